@@ -1,0 +1,270 @@
+"""Library entry points: one structure in, one Result out.
+
+    >>> import bondcheck
+    >>> r = bondcheck.check("sample.cif")
+    >>> r.verdict, r.causes
+
+The CLI, batch scans and cluster runs all call `check_crystal`.
+"""
+from __future__ import annotations
+
+import math
+import time
+from dataclasses import dataclass, field
+from functools import reduce
+from pathlib import Path
+from typing import Any, Iterable, Iterator
+
+import numpy as np
+
+from . import elements
+from .bonds import Criterion, find_contacts, per_atom
+from .count import Count, count, target
+from .diagnose import diagnose
+from .record import Crystal, StructureError
+from .symmetry import find_sites
+
+
+@dataclass(slots=True)
+class Options:
+    anions: list[str] | None = None
+    valence: dict[str, int] = field(default_factory=dict)
+    criterion: Criterion = field(default_factory=Criterion)
+
+    def key(self) -> str:
+        c = self.criterion
+        an = ",".join(self.anions or [])
+        va = ",".join(f"{k}={v}" for k, v in sorted(self.valence.items()))
+        return f"anions={an};valence={va};crit={c.core:.4f},{c.maximum:.4f},{c.relative:.4f}"
+
+
+@dataclass(slots=True)
+class Result:
+    path: str
+    status: str = "ok"
+    error: str | None = None
+    name: str = ""
+    formula: str = ""
+    spacegroup: str = ""
+    verdict: str | None = None
+    causes: list[str] = field(default_factory=list)
+    cations: list[str] = field(default_factory=list)
+    anions: list[str] = field(default_factory=list)
+    partition: str = ""
+    vec_anion: float | None = None
+    aa_predicted: float | None = None
+    aa_observed: float | None = None
+    cc_observed: float | None = None
+    residual: float | None = None
+    electrons_per_formula: float | None = None
+    anions_per_formula: float | None = None
+    sites: list[dict] = field(default_factory=list)
+    findings: list = field(default_factory=list)
+    seconds: float = 0.0
+
+    def to_dict(self) -> dict[str, Any]:
+        d = {k: getattr(self, k) for k in self.__slots__ if k != "findings"}
+        d["findings"] = [f.to_dict() if hasattr(f, "to_dict") else f for f in self.findings]
+        d["seconds"] = round(self.seconds, 5)
+        return d
+
+
+def _r3(x: float | None) -> float | None:
+    return None if x is None or not math.isfinite(x) else round(float(x), 3)
+
+
+def formula_of(crystal: Crystal) -> tuple[str, float]:
+    """Reduced formula (electropositive elements first) and formula units per cell."""
+    syms = elements.symbols()
+    en = elements.pauling()
+    zs = np.unique(crystal.numbers)
+    amounts = {int(z): float(np.sum(crystal.occupancy[crystal.numbers == z])) for z in zs}
+    ints = [round(a) for a in amounts.values()]
+    if all(abs(a - round(a)) < 1e-3 for a in amounts.values()) and min(ints) > 0:
+        g = reduce(math.gcd, ints)
+    else:
+        g = 1
+        # Scale to the most abundant integer-like normalisation.
+    order = sorted(amounts, key=lambda z: (en[z], z))
+    parts = []
+    for z in order:
+        n = amounts[z] / g
+        if abs(n - 1) < 1e-3:
+            parts.append(syms[z])
+        elif abs(n - round(n)) < 1e-3:
+            parts.append(f"{syms[z]}{int(round(n))}")
+        else:
+            parts.append(f"{syms[z]}{n:.3g}")
+    return "".join(parts), float(g)
+
+
+def check_crystal(crystal: Crystal, options: Options | None = None) -> Result:
+    """Run bonds -> count -> diagnose on one crystal record."""
+    t0 = time.perf_counter()
+    options = options or Options()
+    res = Result(path=crystal.source or crystal.name, name=crystal.name)
+    try:
+        _validate(crystal)
+        contacts = find_contacts(crystal, options.criterion)
+        sites = find_sites(crystal)
+        c = count(crystal, contacts, sites, options.anions, options.valence)
+        coord, nearest, last, first_out, fragile = per_atom(contacts, crystal.natoms, crystal.occupancy)
+        fragile_labels = _fragile_sites(crystal, contacts, sites, c, options, fragile)
+        verdict, found = diagnose(crystal, contacts, sites, c, fragile_labels)
+    except StructureError as exc:
+        res.status, res.error = "error", str(exc)
+        res.seconds = time.perf_counter() - t0
+        return res
+    res.formula, z_cell = formula_of(crystal)
+    res.spacegroup = f"{sites.spacegroup} ({sites.spacegroup_number})"
+    res.verdict = verdict
+    res.findings = found
+    res.causes = [f.slug for f in found if f.explains or verdict != "consistent" and f.severity != "info" or f.slug in ("metallic", "nothing-to-count")]
+    res.causes = list(dict.fromkeys(res.causes))
+    if c is not None:
+        res.cations, res.anions, res.partition = c.cations, c.anions, c.reason
+        res.vec_anion = _r3(c.vec_anion)
+        res.aa_predicted = _r3(c.aa_predicted)
+        res.aa_observed = _r3(c.aa_observed)
+        res.cc_observed = _r3(c.cc_observed)
+        res.residual = _r3(c.residual)
+        res.electrons_per_formula = _r3(c.electrons / z_cell)
+        res.anions_per_formula = _r3(c.n_anion / z_cell)
+    res.sites = _site_rows(crystal, sites, c, coord, nearest, last, first_out, fragile)
+    res.seconds = time.perf_counter() - t0
+    return res
+
+
+def _validate(crystal: Crystal) -> None:
+    if crystal.natoms == 0:
+        raise StructureError("no atoms in the structure")
+    v = crystal.volume
+    if not math.isfinite(v) or v < 1e-3:
+        raise StructureError(f"cell volume is {v:.3g} A^3: the cell is degenerate")
+    if np.any(crystal.numbers < 1) or np.any(crystal.numbers > 103):
+        raise StructureError("unknown element in the structure")
+
+
+def _fragile_sites(crystal, contacts, sites, c: Count | None, options: Options, fragile) -> list[str]:
+    """Sites whose verdict-relevant bond count changes within the criterion wobble."""
+    if not fragile.any():
+        return []
+    labels = []
+    for s in np.unique(sites.site[fragile]):
+        rep = int(sites.representative[s])
+        labels.append(_atom_label(crystal, rep))
+    return labels
+
+
+def _atom_label(crystal: Crystal, k: int) -> str:
+    lab = str(crystal.labels[k]) if len(crystal.labels) else ""
+    return lab or f"{elements.symbols()[int(crystal.numbers[k])]}{k + 1}"
+
+
+def _site_rows(crystal, sites, c: Count | None, coord, nearest, last, first_out, fragile) -> list[dict]:
+    syms = elements.symbols()
+    rows = []
+    key = sites.site.astype(np.int64) * 128 + crystal.numbers
+    uniq, first = np.unique(key, return_index=True)
+    for u, k in sorted(zip(uniq, first), key=lambda t: t[1]):
+        atoms = key == u
+        s = int(u // 128)
+        z = int(u % 128)
+        sym = syms[z]
+        occ = float(np.mean(crystal.occupancy[atoms]))
+        row = {
+            "label": _atom_label(crystal, int(k)),
+            "element": sym,
+            "multiplicity": int(sites.multiplicity[s]),
+            "wyckoff": sites.wyckoff[s],
+            "occupancy": round(occ, 4),
+            "role": None,
+            "coordination": _r3(float(np.mean(coord[atoms]))),
+            "bonds": None,
+            "formal_charge": None,
+            "nearest": _r3(float(np.nanmin(nearest[atoms])) if np.isfinite(nearest[atoms]).any() else None),
+            "last_bonded": _r3(float(np.nanmax(last[atoms])) if np.isfinite(last[atoms]).any() else None),
+            "first_unbonded": _r3(float(np.nanmin(first_out[atoms])) if np.isfinite(first_out[atoms]).any() else None),
+            "fragile": bool(fragile[atoms].any()),
+        }
+        if c is not None:
+            anion = bool(c.role[k])
+            row["role"] = "anion" if anion else "cation"
+            b = float(np.mean(c.aa_bonds[atoms]))
+            row["bonds"] = _r3(b)
+            if anion:
+                row["formal_charge"] = _r3(b + elements.valence(sym) - target(sym))
+            else:
+                g = int(c.group_of[k])
+                if c.closure.closes and g in c.closure.keep:
+                    row["formal_charge"] = _r3(elements.valence(sym) - c.closure.keep[g])
+                elif elements.keep_options(sym) == {0: 0}:
+                    row["formal_charge"] = _r3(float(elements.valence(sym)))
+        row["gap"] = _r3(row["first_unbonded"] - row["last_bonded"]) if row["first_unbonded"] and row["last_bonded"] else None
+        rows.append(row)
+    return rows
+
+
+# ---------------------------------------------------------------------------
+# Public API
+
+
+def _options(anions=None, valence=None, criterion=None, options=None) -> Options:
+    if options is not None:
+        return options
+    if isinstance(anions, str):
+        anions = [a.strip() for a in anions.split(",") if a.strip()]
+    return Options(anions=list(anions) if anions else None, valence=dict(valence or {}), criterion=criterion or Criterion())
+
+
+def check(source, *, block: str | None = None, anions=None, valence=None, criterion=None, options=None) -> Result:
+    """Check one structure: a file path, a pymatgen Structure, an ase Atoms or
+    a Crystal. A file with several data blocks needs `block=` (or use
+    `check_all`). Unreadable input raises StructureError."""
+    from .read import read
+
+    opts = _options(anions, valence, criterion, options)
+    crystals = read(source, block=block)
+    if len(crystals) != 1:
+        names = ", ".join(c.name for c in crystals[:5])
+        raise StructureError(f"{source} holds {len(crystals)} structures ({names}); pass block= or use check_all")
+    return check_crystal(crystals[0], opts)
+
+
+def iter_inputs(sources: Iterable) -> Iterator:
+    """Expand directories into the structure files they hold."""
+    from .read import iter_structure_files
+
+    for src in sources:
+        if isinstance(src, (str, Path)) and Path(src).is_dir():
+            yield from iter_structure_files(src)
+        else:
+            yield src
+
+
+def check_all(sources, *, anions=None, valence=None, criterion=None, options=None) -> list[Result]:
+    """Check every structure in the given files, directories and objects; an
+    unreadable input gives a Result with status 'error' and the rest go on."""
+    from .read import read
+
+    if isinstance(sources, (str, Path)) or not isinstance(sources, Iterable):
+        sources = [sources]
+    opts = _options(anions, valence, criterion, options)
+    out = []
+    for src in iter_inputs(sources):
+        path = str(src) if isinstance(src, (str, Path)) else type(src).__name__
+        t0 = time.perf_counter()
+        try:
+            crystals = read(src)
+        except StructureError as exc:
+            out.append(Result(path=path, status="error", error=str(exc), seconds=time.perf_counter() - t0))
+            continue
+        except Exception as exc:  # a reader bug must not lose the other inputs
+            out.append(Result(path=path, status="error", error=f"unexpected {type(exc).__name__}: {exc}", seconds=time.perf_counter() - t0))
+            continue
+        for cr in crystals:
+            try:
+                out.append(check_crystal(cr, opts))
+            except Exception as exc:
+                out.append(Result(path=cr.source or path, status="error", error=f"unexpected {type(exc).__name__}: {exc}"))
+    return out

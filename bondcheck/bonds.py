@@ -1,0 +1,176 @@
+"""Bond stage: neighbour list, bond criterion, per-atom gap.
+
+Every contact within SEARCH x (r_i + r_j) is kept with its ratio
+q = d / (r_i + r_j) (covalent radii of Cordero et al., Dalton Trans. 2008,
+2832). A contact counts as a bond when
+
+* not both atoms are electropositive (s block, group 3, f block): such atoms
+  give their electrons away and do not bond to each other;
+* q <= MAX_RATIO; and
+* q <= CORE_RATIO, or q is within RELATIVE of the shortest contact each atom
+  has to the other's element (so a peroxide O-O at q = 1.17 or the F-F bond of
+  a molecular crystal at q = 1.25 counts, while the second shell of grey As,
+  Sb, Bi and Te, q = 1.2-1.3 next to a first shell at 1.03-1.06, does not).
+
+Contacts between atoms whose occupancies allow only one of them at a time
+(split or mixed sites) are alternatives, not contacts. Fully occupied atoms
+closer than OVERLAP angstrom make the structure unreadable.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from . import elements
+from .record import Crystal, StructureError
+
+CORE_RATIO = 1.15
+MAX_RATIO = 1.30
+RELATIVE = 1.12
+SEARCH = 1.45
+OVERLAP = 0.5
+# Criterion scale used to tell whether a site's count is fragile.
+WOBBLE = 0.03
+
+
+@dataclass(slots=True)
+class Criterion:
+    core: float = CORE_RATIO
+    maximum: float = MAX_RATIO
+    relative: float = RELATIVE
+
+    def scaled(self, f: float) -> "Criterion":
+        return Criterion(self.core * f, self.maximum * f, 1 + (self.relative - 1) * f)
+
+
+@dataclass(slots=True)
+class Contacts:
+    """Every contact of a structure, each unordered pair (and periodic image) once.
+
+    i, j:    atom indices; shift: (m, 3) cell shift of j; d: distance in angstrom.
+    ratio:   d / (r_i + r_j).
+    weight:  occ_i * occ_j, the expected number of such contacts.
+    bonded:  the criterion's decision.
+    fragile: the decision flips when the criterion is scaled by 1 +/- WOBBLE.
+    """
+
+    i: np.ndarray
+    j: np.ndarray
+    shift: np.ndarray
+    d: np.ndarray
+    ratio: np.ndarray
+    weight: np.ndarray
+    bonded: np.ndarray
+    fragile: np.ndarray
+    ionic_pair: np.ndarray
+
+    def vectors(self, crystal: Crystal) -> np.ndarray:
+        """Cartesian vector from atom i to the image of atom j."""
+        fr = crystal.frac[self.j] + self.shift - crystal.frac[self.i]
+        return fr @ crystal.cell
+
+
+_NL_CACHE: dict[float, object] = {}
+
+
+def _neighbour_pairs(crystal: Crystal, cutoff: float):
+    from vesin import NeighborList
+
+    cell = np.ascontiguousarray(crystal.cell, dtype=np.float64)
+    pts = np.ascontiguousarray(crystal.frac @ cell, dtype=np.float64)
+    nl = NeighborList(cutoff=cutoff, full_list=False)
+    i, j, S, d = nl.compute(points=pts, box=cell, periodic=True, quantities="ijSd")
+    return i.astype(np.int64), j.astype(np.int64), S.astype(np.int64), d
+
+
+def decide(ratio, zi, zj, i, j, n_atoms, ionic_pair, criterion: Criterion) -> np.ndarray:
+    """Apply the bond criterion to a set of contacts (arrays of equal length)."""
+    if ratio.size == 0:
+        return np.zeros(0, dtype=bool)
+    # Shortest contact each atom has to each partner element.
+    zs, zcode = np.unique(np.concatenate([zi, zj]), return_inverse=True)
+    m = ratio.size
+    code_i, code_j = zcode[:m], zcode[m:]
+    ne = zs.size
+    best = np.full(n_atoms * ne, np.inf)
+    usable = ~ionic_pair
+    np.minimum.at(best, (i * ne + code_j)[usable], ratio[usable])
+    np.minimum.at(best, (j * ne + code_i)[usable], ratio[usable])
+    rel_i = best[i * ne + code_j] * criterion.relative
+    rel_j = best[j * ne + code_i] * criterion.relative
+    near = (ratio <= rel_i + 1e-9) & (ratio <= rel_j + 1e-9)
+    return usable & (ratio <= criterion.maximum) & ((ratio <= criterion.core) | near)
+
+
+def find_contacts(crystal: Crystal, criterion: Criterion | None = None) -> Contacts:
+    criterion = criterion or Criterion()
+    z = crystal.numbers
+    n = z.size
+    rad = elements.radii()[z]
+    rmax = np.sort(np.unique(rad))[-2:]
+    cutoff = SEARCH * (rmax.sum() if rmax.size == 2 else 2 * rmax[0])
+    i, j, S, d = _neighbour_pairs(crystal, float(cutoff))
+    occ = crystal.occupancy
+    ratio = d / (rad[i] + rad[j])
+    keep = ratio <= SEARCH
+    i, j, S, d, ratio = i[keep], j[keep], S[keep], d[keep], ratio[keep]
+
+    # Alternatives on split or mixed sites, and genuine overlaps.
+    close = d < OVERLAP
+    if close.any():
+        full = (occ[i] + occ[j] > 1.0 + 1e-3) & close
+        if full.any():
+            k = int(np.flatnonzero(full)[0])
+            a, b = int(i[k]), int(j[k])
+            raise StructureError(
+                f"atoms {_name(crystal, a)} and {_name(crystal, b)} are {d[k]:.2f} A apart "
+                "(overlapping atoms; duplicated or misplaced site?)"
+            )
+    alt = (occ[i] + occ[j] <= 1.0 + 1e-3) & (close | (ratio < 0.75))
+    if alt.any():
+        keep = ~alt
+        i, j, S, d, ratio = i[keep], j[keep], S[keep], d[keep], ratio[keep]
+
+    ep = elements.electropositive_by_z()
+    zi, zj = z[i], z[j]
+    ionic_pair = ep[zi] & ep[zj]
+    bonded = decide(ratio, zi, zj, i, j, n, ionic_pair, criterion)
+    lo = decide(ratio, zi, zj, i, j, n, ionic_pair, criterion.scaled(1 - WOBBLE))
+    hi = decide(ratio, zi, zj, i, j, n, ionic_pair, criterion.scaled(1 + WOBBLE))
+    fragile = lo != hi
+    return Contacts(i, j, S, d, ratio, occ[i] * occ[j], bonded, fragile, ionic_pair)
+
+
+def _name(crystal: Crystal, k: int) -> str:
+    lab = str(crystal.labels[k]) if len(crystal.labels) else ""
+    return lab or f"{elements.symbols()[int(crystal.numbers[k])]}#{k}"
+
+
+def per_atom(contacts: Contacts, n_atoms: int, occupancy: np.ndarray):
+    """Per-atom coordination (occupancy weighted), nearest ratio, last bonded
+    ratio, first unbonded ratio and fragility."""
+    c = contacts
+    both_i = np.concatenate([c.i, c.j])
+    both_j = np.concatenate([c.j, c.i])
+    ratio2 = np.concatenate([c.ratio, c.ratio])
+    bonded2 = np.concatenate([c.bonded, c.bonded])
+    usable2 = ~np.concatenate([c.ionic_pair, c.ionic_pair])
+    fragile2 = np.concatenate([c.fragile, c.fragile])
+    coord = np.bincount(both_i[bonded2], weights=occupancy[both_j[bonded2]], minlength=n_atoms)
+    nearest = np.full(n_atoms, np.nan)
+    last = np.full(n_atoms, np.nan)
+    first_out = np.full(n_atoms, np.nan)
+    tmp = np.full(n_atoms, np.inf)
+    np.minimum.at(tmp, both_i[usable2], ratio2[usable2])
+    nearest[np.isfinite(tmp)] = tmp[np.isfinite(tmp)]
+    tmp = np.full(n_atoms, -np.inf)
+    np.maximum.at(tmp, both_i[bonded2], ratio2[bonded2])
+    last[np.isfinite(tmp)] = tmp[np.isfinite(tmp)]
+    tmp = np.full(n_atoms, np.inf)
+    out = usable2 & ~bonded2
+    np.minimum.at(tmp, both_i[out], ratio2[out])
+    first_out[np.isfinite(tmp)] = tmp[np.isfinite(tmp)]
+    fragile = np.zeros(n_atoms, dtype=bool)
+    fragile[both_i[fragile2]] = True
+    return coord, nearest, last, first_out, fragile

@@ -1,0 +1,423 @@
+"""Count stage: split into cations and anions, count electrons, compare with the
+generalized 8-N rule, and try to close the count.
+
+For cations C_m and anions A_n with valence electrons e_C, e_A:
+
+    VEC_A = (m e_C + n e_A) / n
+    8 - VEC_A = AA - CC
+
+AA: anion-anion bonds per anion (bond ends, i.e. the mean number of anion
+neighbours an anion has); CC: electrons per anion that stay on cations
+(cation-cation bonds, lone pairs, nonbonding d electrons). The residual
+
+    residual = VEC_A - 8 + AA_obs - CC_obs
+
+is what the observed bonds leave unexplained, in electrons per anion: positive
+electrons must stay on cations (lone pairs, d electrons) or are in excess;
+negative electrons are missing (multiple bonds, a missing atom). Hydrogen and
+helium complete a shell at 2 instead of 8.
+
+Everything is counted per cell and weighted by occupancy, then divided by the
+number of anions.
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from . import elements
+from .bonds import Contacts
+from .record import Crystal
+from .symmetry import Sites
+
+TOL = 0.05  # electrons per anion
+# Pauling, J. Am. Chem. Soc. 69, 542 (1947): d(n) = d(1) - 0.60 log10 n.
+PAULING_K = 0.60
+DOUBLE_ORDER = 1.3  # bond order from length above which a double bond is allowed
+TRIPLE_ORDER = 2.5
+# A cation-cation contact is a bond only when it is not much longer than the
+# cations' own bonds to anions (edge- and face-sharing polyhedra put cations
+# close without bonding them): common practice, no source.
+CC_BRIDGE = 1.25
+# Most electronegative metal accepted as an anion when no p-block element is
+# present (aurides, platinides).
+METAL_ANION_EN = 2.2
+
+
+def target(sym: str) -> int:
+    return 2 if sym in ("H", "He") else 8
+
+
+@dataclass(slots=True)
+class Closure:
+    """How the count closes (or fails to)."""
+
+    closes: bool
+    keep: dict[int, float] = field(default_factory=dict)  # group -> electrons kept per atom
+    pi_electrons: float = 0.0
+    pi_from_short: float = 0.0
+    pi_from_planar: float = 0.0
+    mixed_groups: list[int] = field(default_factory=list)
+    cost: float = 0.0
+
+
+@dataclass(slots=True)
+class Count:
+    anions: list[str]
+    cations: list[str]
+    reason: str
+    n_anion: float
+    electrons: float
+    vec_anion: float
+    aa_predicted: float
+    aa_observed: float
+    cc_observed: float
+    residual: float
+    role: np.ndarray  # per atom: True for anions
+    aa_bonds: np.ndarray  # per atom: anion-anion bonds (anions) or cation-cation bonds (cations)
+    cc_bond: np.ndarray  # per contact: counted cation-cation bond
+    aa_bond: np.ndarray  # per contact: anion-anion bond
+    groups: list[tuple[int, int]]  # (site, Z) per group
+    group_of: np.ndarray  # per atom
+    closure: Closure
+    valid: bool = True
+    note: str = ""
+
+    @property
+    def status(self) -> str:
+        return "closes" if self.closure.closes else "open"
+
+
+def _symbols(crystal: Crystal) -> list[str]:
+    syms = elements.symbols()
+    return [syms[z] for z in np.unique(crystal.numbers)]
+
+
+def candidate_partitions(crystal: Crystal) -> list[tuple[list[str], str]]:
+    """Anion sets to try, in order: the most electronegative anion-capable
+    element, then the next ones added in order of electronegativity."""
+    present = _symbols(crystal)
+    en = elements.pauling()
+    nums = elements.numbers()
+    order = sorted(present, key=lambda s: -en[nums[s]])
+    capable = [s for s in order if elements.can_be_anion(s)]
+    if len(present) == 1:
+        return [(present, "a single element: every atom counts as an anion (8-N rule for elements)")]
+    if not capable:
+        top = order[0]
+        if en[nums[top]] >= METAL_ANION_EN and any(elements.is_electropositive(s) for s in present):
+            return [([top], f"no p-block element; {top} is the most electronegative (metal anion)")]
+        return []
+    out = []
+    for k in range(1, len(capable) + 1):
+        anions = capable[:k]
+        if k == 1:
+            why = f"{anions[0]} is the most electronegative element that can be an anion"
+        else:
+            why = f"anions {', '.join(anions)}: the {k} most electronegative anion-capable elements"
+        out.append((anions, why))
+    return out
+
+
+def count(
+    crystal: Crystal,
+    contacts: Contacts,
+    sites: Sites,
+    anions: list[str] | None = None,
+    valence: dict[str, int] | None = None,
+) -> Count | None:
+    """Count electrons. Returns None when there is nothing to count (no element
+    can take the anion role)."""
+    valence = valence or {}
+    ctx = _Context(crystal, contacts, sites, valence)
+    if anions:
+        missing = [a for a in anions if a not in ctx.present]
+        if missing:
+            from .record import StructureError
+
+            raise StructureError(f"--anions names {', '.join(missing)}, not present in {crystal.name or 'the structure'}")
+        return ctx.evaluate(list(anions), "set by the user (--anions)")
+    candidates = candidate_partitions(crystal)
+    if not candidates:
+        return None
+    tried = []
+    for an, why in candidates:
+        c = ctx.evaluate(an, why)
+        tried.append(c)
+        if c.valid and c.closure.closes:
+            if len(tried) > 1:
+                c.reason += "; smallest anion set for which the count closes"
+            return c
+    # Nothing closes: report the natural polyanion split.
+    an, why = ctx.polyanion_split(candidates[0][0])
+    for c in tried:
+        if c.anions == an:
+            c.reason = why
+            return c
+    return ctx.evaluate(an, why)
+
+
+class _Context:
+    """Per-structure quantities shared by the candidate partitions."""
+
+    def __init__(self, crystal: Crystal, contacts: Contacts, sites: Sites, valence: dict[str, int]):
+        self.crystal = crystal
+        self.contacts = contacts
+        self.sites = sites
+        syms = elements.symbols()
+        z = crystal.numbers
+        self.sym_of_atom = [syms[k] for k in z]
+        self.present = sorted(set(self.sym_of_atom))
+        self.valence_override = valence
+        val = elements.valence_by_z().copy()
+        for el, n in valence.items():
+            val[elements.numbers()[el]] = n
+        self.val_atom = val[z]
+        self.occ = crystal.occupancy
+        self.electrons = float(np.sum(self.occ * self.val_atom))
+        c = contacts
+        self.bonded = c.bonded
+        bi, bj = c.i[c.bonded], c.j[c.bonded]
+        self.bi, self.bj = bi, bj
+        self.bw = c.weight[c.bonded]
+        self.bd = c.d[c.bonded]
+        self.ep_atom = elements.electropositive_by_z()[z]
+        # Groups: one per (site, element).
+        key = sites.site.astype(np.int64) * 128 + z
+        uniq, self.group_of = np.unique(key, return_inverse=True)
+        self.group_of = self.group_of.reshape(-1)
+        self.groups = [(int(k // 128), int(k % 128)) for k in uniq]
+        self.group_weight = np.bincount(self.group_of, weights=self.occ, minlength=len(uniq))
+
+    def polyanion_split(self, start: list[str]) -> tuple[list[str], str]:
+        """Grow the anion set by elements bonded to anions with a small
+        electronegativity difference (< 0.5): a Ga-Ge framework, As-S pairs."""
+        en = elements.pauling()
+        nums = elements.numbers()
+        anions = list(start)
+        z = self.crystal.numbers
+        changed = True
+        while changed:
+            changed = False
+            an_z = {nums[a] for a in anions}
+            for a, b in zip(z[self.bi], z[self.bj]):
+                for x, y in ((a, b), (b, a)):
+                    if x in an_z and y not in an_z:
+                        sy = elements.symbols()[y]
+                        if elements.can_be_anion(sy) and abs(en[x] - en[y]) < 0.5:
+                            anions.append(sy)
+                            an_z.add(y)
+                            changed = True
+        if anions == list(start):
+            return anions, f"{anions[0]} is the most electronegative element that can be an anion; no split closes the count"
+        return anions, (
+            f"anions {', '.join(anions)}: {start[0]} and the elements bonded to it with an "
+            "electronegativity difference below 0.5; no split closes the count"
+        )
+
+    def evaluate(self, anions: list[str], why: str) -> Count:
+        cr = self.crystal
+        z = cr.numbers
+        nums = elements.numbers()
+        an_z = np.zeros(128, dtype=bool)
+        for a in anions:
+            an_z[nums[a]] = True
+        role = an_z[z]
+        occ = self.occ
+        n = cr.natoms
+        bi, bj, bw = self.bi, self.bj, self.bw
+        aa = role[bi] & role[bj]
+        cc_candidate = ~role[bi] & ~role[bj] & ~self.ep_atom[bi] & ~self.ep_atom[bj]
+        # Mean cation-anion bond length per atom, for the bridging test.
+        ca = role[bi] != role[bj]
+        dsum = np.bincount(bi[ca], weights=self.bd[ca], minlength=n) + np.bincount(bj[ca], weights=self.bd[ca], minlength=n)
+        dcnt = np.bincount(bi[ca], minlength=n) + np.bincount(bj[ca], minlength=n)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            mean_ca = np.where(dcnt > 0, dsum / np.maximum(dcnt, 1), np.inf)
+        limit = CC_BRIDGE * np.minimum(mean_ca[bi], mean_ca[bj])
+        cc = cc_candidate & (self.bd <= limit)
+
+        n_anion = float(np.sum(occ[role]))
+        targets = np.array([target(s) for s in self.sym_of_atom], dtype=float)
+        shell = float(np.sum(occ[role] * targets[role]))
+        aa_ends = 2.0 * float(np.sum(bw[aa]))
+        cc_e = 2.0 * float(np.sum(bw[cc]))
+        vec = self.electrons / n_anion
+        mean_target = shell / n_anion
+        aa_obs = aa_ends / n_anion
+        cc_obs = cc_e / n_anion
+        residual = vec - mean_target + aa_obs - cc_obs
+
+        # Per-atom homonuclear-role bonds: anion-anion for anions, cation-cation for cations.
+        per = np.zeros(n)
+        for mask in (aa, cc):
+            np.add.at(per, bi[mask], occ[bj[mask]])
+            np.add.at(per, bj[mask], occ[bi[mask]])
+
+        # Validity: a p-block cation bonded to another cation of a different
+        # element should rather be an anion.
+        valid, note = True, ""
+        hetero = cc & (z[bi] != z[bj])
+        if hetero.any():
+            en = elements.pauling()
+            for a, b in zip(z[bi[hetero]], z[bj[hetero]]):
+                more = a if en[a] > en[b] else b
+                sm = elements.symbols()[more]
+                if elements.can_be_anion(sm):
+                    valid = False
+                    note = f"{sm} is left as a cation bonded to {elements.symbols()[b if more == a else a]}"
+                    break
+
+        closure = self._close(role, per, cc, aa, residual * n_anion + cc_e, n_anion)
+        cations = [s for s in self.present if s not in anions]
+        return Count(
+            anions=list(anions),
+            cations=cations,
+            reason=why,
+            n_anion=n_anion,
+            electrons=self.electrons,
+            vec_anion=vec,
+            aa_predicted=mean_target - vec,
+            aa_observed=aa_obs,
+            cc_observed=cc_obs,
+            residual=residual,
+            role=role,
+            aa_bonds=per,
+            cc_bond=cc,
+            aa_bond=aa,
+            groups=self.groups,
+            group_of=self.group_of,
+            closure=closure,
+            valid=valid,
+            note=note,
+        )
+
+    # -- closing the count -------------------------------------------------
+    def _pi_capacity(self, role, aa, per) -> tuple[float, float]:
+        """Electrons that pi bonding could supply: 1 per planar three-bonded
+        anion, and 2 per extra bond order at short anion-anion contacts
+        between other anions."""
+        c = self.contacts
+        bi, bj, bd, bw = self.bi, self.bj, self.bd, self.bw
+        n = self.crystal.natoms
+        planar_atom = np.zeros(n, dtype=bool)
+        three = np.flatnonzero(role & (np.abs(per - 3.0) < 1e-6))
+        if three.size:
+            vec = c.vectors(self.crystal)[c.bonded]
+            for k in three:
+                m = aa & ((bi == k) | (bj == k))
+                v = np.where((bi[m] == k)[:, None], vec[m], -vec[m])
+                if v.shape[0] != 3:
+                    continue
+                normal = np.cross(v[0] - v[1], v[0] - v[2])
+                nn = np.linalg.norm(normal)
+                if nn > 1e-9 and abs(np.dot(v[0], normal / nn)) < 0.15:
+                    planar_atom[k] = True
+        planar = float(np.sum(self.occ[planar_atom]))
+        rad = elements.radii()
+        z = self.crystal.numbers
+        order = 10.0 ** ((rad[z[bi]] + rad[z[bj]] - bd) / PAULING_K)
+        extra = np.where(order >= TRIPLE_ORDER, 2.0, np.where(order >= DOUBLE_ORDER, 1.0, 0.0))
+        usable = aa & ~planar_atom[bi] & ~planar_atom[bj]
+        short = 2.0 * float(np.sum((bw * extra)[usable]))
+        return short, planar
+
+    def _close(self, role, per, cc, aa, keep_needed: float, n_anion: float) -> Closure:
+        """Find kept electrons per cation group (lone pairs, d electrons,
+        cation-cation bonds) and pi electrons that make the count close."""
+        tol = TOL * max(n_anion, 1.0)
+        options = self._group_options(role, per)
+        totals = _reachable(options)
+        pi_short = pi_planar = 0.0
+        best = _match(totals, keep_needed, tol)
+        pi = 0.0
+        if best is None and keep_needed < tol + max(totals, default=0.0):
+            pi_short, pi_planar = self._pi_capacity(role, aa, per)
+            cap = pi_short + pi_planar
+            steps = int(math.floor(cap + 1e-6))
+            for p in range(1, steps + 1):
+                best = _match(totals, keep_needed + p, tol)
+                if best is not None:
+                    pi = float(p)
+                    break
+            if best is None and cap - steps > 1e-6:
+                best = _match(totals, keep_needed + cap, tol)
+                pi = cap if best is not None else 0.0
+        if best is None:
+            return Closure(False)
+        cost, choice, mixed = best
+        keep = {g: v for g, v in choice.items()}
+        from_planar = min(pi, pi_planar)
+        return Closure(True, keep, pi, pi - from_planar, from_planar, mixed, cost)
+
+    def _group_options(self, role, per):
+        """Per cation group: (group index, weight, {kept electrons per atom: cost})."""
+        out = []
+        for g, (site, zz) in enumerate(self.groups):
+            atoms = self.group_of == g
+            if role[atoms].any():
+                continue
+            sym = elements.symbols()[zz]
+            w = float(self.group_weight[g])
+            ccb = float(np.mean(per[atoms]))  # cation-cation bonds per atom
+            if sym in self.valence_override:
+                v = self.valence_override[sym]
+                opts = {0: 0}
+            else:
+                v = elements.valence(sym)
+                opts = elements.keep_options(sym)
+            if elements.block(sym) == "p" or sym in self.valence_override:
+                opts = {ccb + k: c for k, c in opts.items()}
+            else:
+                opts = {k: c for k, c in opts.items() if k >= ccb - 1e-6}
+                if not opts:
+                    opts = {}
+            out.append((g, w, opts, v))
+        return out
+
+
+def _reachable(options):
+    """Totals of kept electrons reachable by choosing one option per group
+    (uniform over the group) or mixing two options within a group; maps
+    total -> (cost, choice, mixed groups)."""
+    states: dict[float, tuple[float, dict, list]] = {0.0: (0.0, {}, [])}
+    for g, w, opts, _v in options:
+        if not opts:
+            return {}
+        local: dict[float, tuple[float, float, bool]] = {}
+        items = sorted(opts.items())
+        for k, c in items:
+            local.setdefault(round(w * k, 4), (c * w, k, False))
+        wi = int(round(w))
+        if abs(w - wi) < 1e-6 and 1 < wi <= 96 and len(items) > 1:
+            for x in range(len(items)):
+                for y in range(x + 1, len(items)):
+                    (k1, c1), (k2, c2) = items[x], items[y]
+                    for a in range(1, wi):
+                        tot = round(a * k1 + (wi - a) * k2, 4)
+                        cost = a * c1 + (wi - a) * c2 + 0.5
+                        if tot not in local or local[tot][0] > cost:
+                            local[tot] = (cost, tot / wi, True)
+        new: dict[float, tuple[float, dict, list]] = {}
+        for t0, (c0, ch0, mx0) in states.items():
+            for t1, (c1, k, mixed) in local.items():
+                t = round(t0 + t1, 4)
+                cost = c0 + c1
+                if t not in new or new[t][0] > cost:
+                    ch = dict(ch0)
+                    ch[g] = k
+                    new[t] = (cost, ch, mx0 + [g] if mixed else mx0)
+        states = new
+        if len(states) > 20000:
+            return states
+    return states
+
+
+def _match(totals, needed: float, tol: float):
+    best = None
+    for t, (cost, choice, mixed) in totals.items():
+        if abs(t - needed) <= tol and (best is None or cost < best[0]):
+            best = (cost, choice, mixed)
+    return best

@@ -1,0 +1,247 @@
+"""Finding types. Each is a small declared class: a slug, a severity, a message
+template filled with the numbers of the case, and an explanation for
+`bondcheck explain SLUG`.
+
+A finding instance carries the sites it concerns and its evidence (a dict of
+plain numbers and strings), so renderers never need to recompute anything.
+"""
+from __future__ import annotations
+
+from typing import ClassVar
+
+SEVERITIES = ("info", "warning", "error")
+
+
+class Finding:
+    slug: ClassVar[str] = ""
+    severity: ClassVar[str] = "info"
+    template: ClassVar[str] = ""
+    title: ClassVar[str] = ""
+    meaning: ClassVar[str] = ""
+    fires_when: ClassVar[str] = ""
+    next_steps: ClassVar[str] = ""
+    # True when the finding explains why a count closes (it is a cause of
+    # a consistent verdict rather than a problem).
+    explains: ClassVar[bool] = False
+
+    __slots__ = ("args", "sites", "evidence", "rank")
+
+    def __init__(self, sites=(), evidence=None, rank: float = 0.0, **args):
+        self.args = args
+        self.sites = list(sites)
+        self.evidence = dict(evidence or {})
+        self.rank = rank
+
+    @property
+    def message(self) -> str:
+        return self.template.format(**self.args)
+
+    def to_dict(self) -> dict:
+        return {
+            "slug": self.slug,
+            "severity": self.severity,
+            "message": self.message,
+            "sites": self.sites,
+            "evidence": self.evidence,
+        }
+
+    def __repr__(self) -> str:
+        return f"<{self.slug}: {self.message}>"
+
+
+_REGISTRY: dict[str, type[Finding]] = {}
+
+
+def register(cls: type[Finding]) -> type[Finding]:
+    assert cls.slug and cls.slug not in _REGISTRY, cls.slug
+    assert cls.severity in SEVERITIES, cls.severity
+    _REGISTRY[cls.slug] = cls
+    return cls
+
+
+def all_findings() -> dict[str, type[Finding]]:
+    return dict(_REGISTRY)
+
+
+def lookup(slug: str) -> type[Finding] | None:
+    return _REGISTRY.get(slug)
+
+
+# --------------------------------------------------------------------------
+# Explanations of a closed count
+
+
+@register
+class LonePairs(Finding):
+    slug = "lone-pairs"
+    explains = True
+    template = "{n} electrons per formula stay on {who} as ns2 lone pairs"
+    title = "Lone pairs on p-block cations"
+    meaning = (
+        "Heavier p-block cations often keep their ns2 pair (Tl+, Sn2+, Pb2+, Sb3+, Bi3+, Te4+, I5+). "
+        "Those two electrons are not given to the anions, and the count closes once they are set aside."
+    )
+    fires_when = "The residual is positive and lone pairs on p-block cations, at an oxidation state the element is known in, account for it."
+    next_steps = "Look at the cation's coordination: a stereochemically active pair leaves a one-sided environment."
+
+
+@register
+class DElectrons(Finding):
+    slug = "d-electrons"
+    explains = True
+    template = "{who} keeps nonbonding d electrons: {states}"
+    title = "Nonbonding d electrons on transition-metal cations"
+    meaning = (
+        "A transition metal gives the anions only as many electrons as its oxidation state; "
+        "the rest of its group-number electrons stay as nonbonding d electrons."
+    )
+    fires_when = "The residual is positive and d-block cations at known oxidation states keep exactly that many electrons."
+    next_steps = "Check that the implied oxidation state fits the metal's coordination and bond lengths (bond valence sums)."
+
+
+@register
+class CationCationBonds(Finding):
+    slug = "cation-cation-bonds"
+    explains = True
+    template = "{n} cation-cation bonds per cell ({pairs}) hold {e} electrons per anion"
+    title = "Bonds between cations"
+    meaning = (
+        "Cations that bond to each other (Hg2 2+, In-In, Ga-Ga, Si-Si, metal-metal pairs) keep one electron "
+        "per bond instead of passing it to the anions."
+    )
+    fires_when = "A contact between two non-electropositive cations passes the bond criterion and is not much longer than their bonds to anions."
+    next_steps = "Compare the cation-cation distance with the element's single-bond length."
+
+
+@register
+class MultipleBonds(Finding):
+    slug = "multiple-bonds"
+    explains = True
+    template = "short anion-anion contacts carry multiple bonds: {e} electrons per cell ({pairs})"
+    title = "Multiple bonds at short contacts"
+    meaning = (
+        "A bond clearly shorter than the sum of single-bond radii has order above one (Pauling: "
+        "d(n) = d(1) - 0.60 log10 n); each extra order counts as one more bond at each end."
+    )
+    fires_when = "The residual is negative and short anion-anion contacts, read as double or triple bonds, make up the deficit."
+    next_steps = "Confirm the short distance is not an artefact of disorder or a wrong atom type."
+
+
+@register
+class PiBonds(Finding):
+    slug = "pi-bonds"
+    explains = True
+    template = "{n} planar three-bonded anion sites per cell carry delocalised pi bonds"
+    title = "Pi bonding in planar three-bonded nets"
+    meaning = "Atoms with three bonds in a plane (graphite-like sheets, carbonate-like groups) use their fourth electron in a pi bond."
+    fires_when = "The residual is negative and planar three-bonded anion sites account for it, one electron each."
+    next_steps = "Check the planarity and that the bond lengths lie between single and double."
+
+
+@register
+class DivalentLanthanide(Finding):
+    slug = "divalent-lanthanide"
+    explains = True
+    template = "{who} stays divalent and keeps one electron"
+    title = "Divalent Sm, Eu or Yb"
+    meaning = "Sm, Eu and Yb are often divalent (4f7 Eu2+, 4f14 Yb2+): they give two electrons, not three."
+    fires_when = "The count closes only with the lanthanide at +2."
+    next_steps = "Magnetic data or the lanthanide's bond lengths tell +2 from +3."
+
+
+@register
+class MixedValence(Finding):
+    slug = "mixed-valence"
+    explains = True
+    template = "{who} takes a mixture of oxidation states (average {avg})"
+    title = "Mixed valence on one site"
+    meaning = "Atoms of one site take two oxidation states, so the count closes only on average."
+    fires_when = "No single oxidation state per site closes the count, but a mixture on one site does."
+    next_steps = "Look for a superstructure or charge order that would separate the two states."
+
+
+@register
+class OccupancyAverage(Finding):
+    slug = "partial-occupancy"
+    template = "the count uses occupancy-weighted averages over {n} partly occupied or mixed sites"
+    title = "Counted over partial occupancies"
+    meaning = "Partly occupied and mixed sites enter the count with their occupancies as weights, so every number is an average."
+    fires_when = "Any site has an occupancy below one."
+    next_steps = "An ordered model in a supercell gives integer counts; check that the refined occupancies sum to a charge-balanced formula."
+
+
+# --------------------------------------------------------------------------
+# Problems
+
+
+@register
+class Metallic(Finding):
+    slug = "metallic"
+    template = "{why}"
+    title = "Metallic bonding"
+    meaning = (
+        "Octets cannot form: too few valence electrons per anion (VEC below 4) or many near-equidistant "
+        "neighbours without a gap. The electron count does not apply in the 8-N sense; that is expected for metals and intermetallics."
+    )
+    fires_when = "VEC per anion is below 4, no element can take the anion role, or anion sites have six or more equidistant homoatomic neighbours."
+    next_steps = "Nothing is wrong by itself; compare with known intermetallics of the same structure type."
+
+
+@register
+class ElectronExcess(Finding):
+    slug = "electron-excess"
+    severity = "warning"
+    template = "{e} electrons per anion are left over that lone pairs and d electrons at known oxidation states cannot hold"
+    title = "More electrons than the bonds need"
+    meaning = (
+        "After filling octets with the observed anion-anion bonds and setting aside what cations can keep, electrons remain. "
+        "Typical reasons: hypervalent (3-centre) bonding, metallic behaviour, an anion site taken for a cation or a missing anion-anion bond."
+    )
+    fires_when = "The residual is positive and no assignment of lone pairs and d electrons closes it."
+    next_steps = "Check anion-anion contacts just beyond the criterion, linear or square-planar anion environments, and the element assignment of each site."
+
+
+@register
+class ElectronDeficit(Finding):
+    slug = "electron-deficit"
+    severity = "warning"
+    template = "{e} electrons per anion are missing for octets with the observed bonds"
+    title = "Fewer electrons than the bonds need"
+    meaning = (
+        "The anions cannot complete their octets with the observed bonds: typical reasons are multiple bonds not "
+        "recognised, an electron-deficient cluster, missing cations (or hydrogen), or an anion site that should be a cation."
+    )
+    fires_when = "The residual is negative and no multiple bonds explain it."
+    next_steps = "Check for missing atoms (hydrogen above all), deltahedral clusters and the element assignment of each site."
+
+
+@register
+class InvalidSplit(Finding):
+    slug = "unusual-split"
+    severity = "info"
+    template = "{note}"
+    title = "Cation/anion split with hetero cation-cation bonds"
+    meaning = "The split used leaves a p-block element as a cation bonded to another cation; no better split closes the count."
+    fires_when = "Every candidate split either leaves such a bond or does not close."
+    next_steps = "Try --anions to set the split by hand."
+
+
+@register
+class AmbiguousCutoff(Finding):
+    slug = "ambiguous-cutoff"
+    severity = "info"
+    template = "the bond count at {n} sites changes within {pct}% of the bond criterion"
+    title = "Bond count sensitive to the criterion"
+    meaning = "A contact lies close to the bond criterion, so a slightly different criterion would count it differently."
+    fires_when = "Scaling the criterion by a few percent adds or removes a bond at a site."
+    next_steps = "Look at the contacts listed in the evidence: are they bonds? Compare with the gap ratios."
+
+
+@register
+class NothingToCount(Finding):
+    slug = "nothing-to-count"
+    template = "{why}"
+    title = "No electron count applies"
+    meaning = "The structure has no element that can take the anion role (a metal or intermetallic), so the 8-N rule has nothing to say."
+    fires_when = "Only metals are present, or a single metallic element."
+    next_steps = "Nothing; the verdict is not-applicable."
