@@ -7,10 +7,13 @@ q = d / (r_i + r_j) (covalent radii of Cordero et al., Dalton Trans. 2008,
 * not both atoms are electropositive (s block, group 3, f block): such atoms
   give their electrons away and do not bond to each other;
 * q <= MAX_RATIO; and
-* q <= CORE_RATIO, or q is within RELATIVE of the shortest contact each atom
-  has to the other's element (so a peroxide O-O at q = 1.17 or the F-F bond of
-  a molecular crystal at q = 1.25 counts, while the second shell of grey As,
-  Sb, Bi and Te, q = 1.2-1.3 next to a first shell at 1.03-1.06, does not).
+* q <= CORE_RATIO; or q <= EXTENDED_RATIO and q is within RELATIVE of the
+  shortest contact each atom has to the other's element (a peroxide O-O at
+  q = 1.17 counts; the Sb-Sb contact of NiSb, q = 1.23 behind Ni-Sb bonds at
+  0.99, does not); or q is within RELATIVE of the nearest contact of both
+  atoms altogether (the F-F and H-H bonds of molecular crystals, q = 1.21-1.25).
+  The second shell of grey As, Sb, Bi and Te (q = 1.2-1.3 next to a first
+  shell at 1.03-1.06) fails all three.
 
 Contacts between atoms whose occupancies allow only one of them at a time
 (split or mixed sites) are alternatives, not contacts. Fully occupied atoms
@@ -26,6 +29,7 @@ from . import elements
 from .record import Crystal, StructureError
 
 CORE_RATIO = 1.15
+EXTENDED_RATIO = 1.20
 MAX_RATIO = 1.30
 RELATIVE = 1.12
 SEARCH = 1.45
@@ -88,19 +92,25 @@ def decide(ratio, zi, zj, i, j, n_atoms, ionic_pair, criterion: Criterion) -> np
     """Apply the bond criterion to a set of contacts (arrays of equal length)."""
     if ratio.size == 0:
         return np.zeros(0, dtype=bool)
-    # Shortest contact each atom has to each partner element.
+    usable = ~ionic_pair
+    # Shortest contact each atom has to each partner element, and overall.
     zs, zcode = np.unique(np.concatenate([zi, zj]), return_inverse=True)
     m = ratio.size
     code_i, code_j = zcode[:m], zcode[m:]
     ne = zs.size
     best = np.full(n_atoms * ne, np.inf)
-    usable = ~ionic_pair
     np.minimum.at(best, (i * ne + code_j)[usable], ratio[usable])
     np.minimum.at(best, (j * ne + code_i)[usable], ratio[usable])
-    rel_i = best[i * ne + code_j] * criterion.relative
-    rel_j = best[j * ne + code_i] * criterion.relative
-    near = (ratio <= rel_i + 1e-9) & (ratio <= rel_j + 1e-9)
-    return usable & (ratio <= criterion.maximum) & ((ratio <= criterion.core) | near)
+    nearest = np.full(n_atoms, np.inf)
+    np.minimum.at(nearest, i[usable], ratio[usable])
+    np.minimum.at(nearest, j[usable], ratio[usable])
+    rel = criterion.relative
+    eps = 1e-9
+    near_el = (ratio <= best[i * ne + code_j] * rel + eps) & (ratio <= best[j * ne + code_i] * rel + eps)
+    near_all = (ratio <= nearest[i] * rel + eps) & (ratio <= nearest[j] * rel + eps)
+    extended = criterion.core * EXTENDED_RATIO / CORE_RATIO
+    ok = (ratio <= criterion.core) | (near_el & (ratio <= extended)) | near_all
+    return usable & (ratio <= criterion.maximum) & ok
 
 
 def find_contacts(crystal: Crystal, criterion: Criterion | None = None) -> Contacts:

@@ -389,7 +389,9 @@ def _reachable(options):
         local: dict[float, tuple[float, float, bool]] = {}
         items = sorted(opts.items())
         for k, c in items:
-            local.setdefault(round(w * k, 4), (c * w, k, False))
+            # A small convex term spreads kept electrons evenly over the sites
+            # of one element (V3+ on two sites rather than V2+ and V4+).
+            local.setdefault(round(w * k, 4), (c * w + 0.001 * w * k * k, k, False))
         wi = int(round(w))
         if abs(w - wi) < 1e-6 and 1 < wi <= 96 and len(items) > 1:
             for x in range(len(items)):
@@ -397,7 +399,7 @@ def _reachable(options):
                     (k1, c1), (k2, c2) = items[x], items[y]
                     for a in range(1, wi):
                         tot = round(a * k1 + (wi - a) * k2, 4)
-                        cost = a * c1 + (wi - a) * c2 + 0.5
+                        cost = a * c1 + (wi - a) * c2 + 0.5 + 0.001 * (a * k1 * k1 + (wi - a) * k2 * k2)
                         if tot not in local or local[tot][0] > cost:
                             local[tot] = (cost, tot / wi, True)
         new: dict[float, tuple[float, dict, list]] = {}

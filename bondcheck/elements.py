@@ -141,11 +141,15 @@ def keep_options(sym: str) -> dict[int, int]:
         return {0: 0}
     common, known = oxidation_states(sym)
     if row["block"] == "p":
+        # A lone pair costs a little, more on light elements (N, P, S, Cl
+        # rarely keep one in solids), so that d electrons are preferred when
+        # both close a count.
         opts = {0: 0}
+        light = 0.3 if row["row"] <= 3 else 0.0
         if (v - 2) in common:
-            opts[2] = 0
+            opts[2] = 0.2 + light
         elif (v - 2) in known and v - 2 > 0:
-            opts[2] = 1
+            opts[2] = 1 + light
         return opts
     opts = {}
     for ox in sorted(known):
