@@ -1,0 +1,976 @@
+"""Read crystal structures into :class:`~bondcheck.record.Crystal` records.
+
+CIF files go through gemmi's CIF tokenizer and a small numpy symmetry
+expansion written for speed; every other format is handed to ase (POSCAR,
+CONTCAR, extended XYZ, ...) or pymatgen (Structure JSON), imported lazily so
+that ``import bondcheck.read`` stays cheap.
+
+Whatever goes wrong, the public functions raise :class:`StructureError` with a
+one-line message meant for users.
+"""
+from __future__ import annotations
+
+import gzip
+import json
+import math
+import os
+import re
+from functools import lru_cache
+from pathlib import Path
+from typing import Iterator
+
+import gemmi
+import numpy as np
+
+from .record import Crystal, StructureError
+
+__all__ = ["read", "iter_structure_files", "Crystal", "StructureError"]
+
+# Images of one site closer than this (angstrom) are the same atom: rounding
+# of coordinates written with few digits moves images of an atom on a special
+# position apart by a few hundredths of an angstrom at most.
+MERGE_TOL = 0.05
+# Images of one site closer than this (angstrom) cannot both be occupied.  A
+# partly occupied site whose images crowd within this distance is kept split
+# (the images are alternative positions) as long as the occupancies of a
+# crowd add up to at most 1; otherwise the crowd is merged into one atom.
+CROWD_TOL = 0.4
+OCC_TOL = 1e-3
+
+_ELEMENTS = (
+    "H He Li Be B C N O F Ne Na Mg Al Si P S Cl Ar K Ca Sc Ti V Cr Mn Fe Co Ni "
+    "Cu Zn Ga Ge As Se Br Kr Rb Sr Y Zr Nb Mo Tc Ru Rh Pd Ag Cd In Sn Sb Te I "
+    "Xe Cs Ba La Ce Pr Nd Pm Sm Eu Gd Tb Dy Ho Er Tm Yb Lu Hf Ta W Re Os Ir Pt "
+    "Au Hg Tl Pb Bi Po At Rn Fr Ra Ac Th Pa U Np Pu Am Cm Bk Cf Es Fm Md No Lr "
+    "Rf Db Sg Bh Hs Mt Ds Rg Cn Nh Fl Mc Lv Ts Og"
+).split()
+_Z = {sym: z for z, sym in enumerate(_ELEMENTS, start=1)}
+_Z["D"] = 1  # deuterium
+_Z["T"] = 1  # tritium
+
+_CIF_SUFFIXES = (".cif", ".mcif", ".cif.gz", ".mcif.gz")
+_VASP_SUFFIXES = (".vasp", ".poscar")
+_XYZ_SUFFIXES = (".xyz", ".extxyz")
+_STRUCTURE_SUFFIXES = _CIF_SUFFIXES + _VASP_SUFFIXES + _XYZ_SUFFIXES + (".json",)
+_VASP_PREFIXES = ("POSCAR", "CONTCAR")
+
+
+# --------------------------------------------------------------------------
+# public API
+# --------------------------------------------------------------------------
+
+def read(source, *, block: str | None = None) -> list[Crystal]:
+    """Read one structure source into a list of crystals.
+
+    ``source`` is a path (str or Path), a pymatgen ``Structure``/``IStructure``,
+    an ase ``Atoms`` or a :class:`Crystal` (returned as is).  A CIF file gives
+    one crystal per data block holding atom sites; ``block`` selects one of
+    them by name.  Anything that cannot be read raises :class:`StructureError`.
+    """
+    if isinstance(source, Crystal):
+        crystals = [source]
+    elif isinstance(source, (str, os.PathLike)):
+        return _read_path(Path(os.fspath(source)), block)
+    else:
+        crystals = _read_object(source)
+    return _select(crystals, block)
+
+
+def iter_structure_files(path) -> Iterator[Path]:
+    """Yield the structure files under ``path`` (recursively, sorted).
+
+    Files are recognised by name: ``*.cif``, ``*.mcif``, ``*.cif.gz``,
+    ``POSCAR*``, ``CONTCAR*``, ``*.vasp``, ``*.poscar``, ``*.xyz``,
+    ``*.extxyz`` and ``*.json`` (pymatgen Structure).  Hidden files and
+    directories are skipped.  A file path is yielded as is.
+    """
+    root = Path(os.fspath(path))
+    if root.is_file():
+        yield root
+        return
+    if not root.is_dir():
+        raise StructureError(f"no such file or directory: {root}")
+    found = []
+    for dirpath, dirnames, filenames in os.walk(root):
+        dirnames[:] = [d for d in dirnames if not d.startswith(".")]
+        rel = Path(dirpath).relative_to(root).parts
+        for fname in filenames:
+            if _is_structure_name(fname):
+                found.append((rel, fname))
+    found.sort()
+    for rel, fname in found:
+        yield root.joinpath(*rel, fname)
+
+
+def _is_structure_name(fname: str) -> bool:
+    if fname.startswith("."):
+        return False
+    if fname.startswith(_VASP_PREFIXES):
+        return True
+    return fname.lower().endswith(_STRUCTURE_SUFFIXES)
+
+
+def _select(crystals: list[Crystal], block: str | None) -> list[Crystal]:
+    if block is None:
+        return crystals
+    chosen = [c for c in crystals if c.name == block]
+    if not chosen:
+        chosen = [c for c in crystals if c.name.lower() == block.lower()]
+    if not chosen:
+        names = ", ".join(c.name for c in crystals) or "none"
+        raise StructureError(f"no data block named '{block}' (found: {names})")
+    return chosen
+
+
+def _one_line(text: str, limit: int = 160) -> str:
+    text = " ".join(str(text).split())
+    return text if len(text) <= limit else text[: limit - 3] + "..."
+
+
+# --------------------------------------------------------------------------
+# files
+# --------------------------------------------------------------------------
+
+def _read_path(path: Path, block: str | None) -> list[Crystal]:
+    if not path.exists():
+        raise StructureError(f"no such file: {path}")
+    if path.is_dir():
+        raise StructureError(f"{path} is a directory, not a structure file")
+    lname = path.name.lower()
+    if lname.endswith(_CIF_SUFFIXES):
+        return read_cif_bytes(_read_bytes(path), str(path), block=block)
+    if lname.endswith((".json", ".json.gz")):
+        return _select(_read_pymatgen_json(path), block)
+    if not (path.name.startswith(_VASP_PREFIXES) or lname.endswith(_VASP_SUFFIXES + _XYZ_SUFFIXES)):
+        head = _read_bytes(path)
+        if _looks_like_cif(head):
+            return read_cif_bytes(head, str(path), block=block)
+    return _select(_read_with_ase(path), block)
+
+
+def _read_bytes(path: Path) -> bytes:
+    try:
+        with open(path, "rb") as fh:
+            data = fh.read()
+    except OSError as exc:
+        raise StructureError(f"cannot open file: {exc.strerror or exc}") from None
+    if path.name.lower().endswith(".gz"):
+        try:
+            data = gzip.decompress(data)
+        except (OSError, EOFError, ValueError) as exc:
+            raise StructureError(f"corrupt gzip file: {_one_line(exc)}") from None
+    return data
+
+
+_CIF_START = re.compile(rb"\A(?:\s*#[^\n]*\n)*\s*data_", re.IGNORECASE)
+
+
+def _looks_like_cif(data: bytes) -> bool:
+    return bool(_CIF_START.match(data[:65536].lstrip(b"\xef\xbb\xbf")))
+
+
+# bytes that never occur in a text file (everything below 0x20 except the
+# whitespace characters tab, newline, vertical tab, form feed, return; DEL;
+# 0x1a is the DOS end-of-file mark, tolerated)
+_CONTROL = bytes([*range(0, 9), *range(14, 26), *range(27, 32), 127])
+
+
+def _decode(data: bytes) -> str:
+    if data[:2] in (b"\xff\xfe", b"\xfe\xff"):
+        try:
+            return data.decode("utf-16")
+        except UnicodeDecodeError:
+            raise StructureError("binary file: not a text file (bad UTF-16)") from None
+    n_control = len(data) - len(data.translate(None, _CONTROL))
+    if b"\x00" in data or n_control > 8 + len(data) // 200:
+        raise StructureError("binary file: contains non-text bytes")
+    try:
+        text = data.decode("utf-8")
+    except UnicodeDecodeError:
+        # a stray non-UTF-8 byte (usually an accented name in a comment or a
+        # publication field) should not cost us the structure
+        text = data.decode("latin-1")
+    if text.startswith("\ufeff"):
+        text = text[1:]
+    return text
+
+
+# --------------------------------------------------------------------------
+# CIF
+# --------------------------------------------------------------------------
+
+_GEMMI_POS = re.compile(r"^string:(\d+)(?::\d+)?(?:\(\d+\))?:?\s*")
+
+
+def _cif_syntax_error(exc: Exception) -> StructureError:
+    msg = _one_line(exc)
+    m = _GEMMI_POS.match(msg)
+    where = ""
+    if m:
+        where = f" (line {m.group(1)})"
+        msg = msg[m.end():]
+    low = msg.lower()
+    if "wrong number of values in loop" in low:
+        kind = "truncated CIF or broken loop"
+    elif "unterminated" in low:
+        kind = "truncated CIF"
+    elif "expected block header" in low:
+        kind = "not a CIF file"
+    else:
+        kind = "invalid CIF"
+    msg = msg[:1].lower() + msg[1:]
+    return StructureError(f"{kind}: {msg}{where}")
+
+
+def read_cif_bytes(data: bytes, source: str = "", *, block: str | None = None) -> list[Crystal]:
+    """Read CIF content (bytes or str) into one crystal per block with atoms."""
+    if isinstance(data, str):
+        text = data
+    else:
+        if not data.strip(b" \t\r\n\x0b\x0c\x1a"):
+            raise StructureError("empty file")
+        text = _decode(data)
+    if not text.strip():
+        raise StructureError("empty file")
+    try:
+        doc = gemmi.cif.read_string(text)
+    except Exception as exc:  # gemmi raises ValueError/RuntimeError on syntax errors
+        raise _cif_syntax_error(exc) from None
+    if len(doc) == 0:
+        raise StructureError("not a CIF file: no data_ block")
+
+    blocks = [b for b in doc if _has_atoms(b)]
+    if block is not None:
+        wanted = [b for b in blocks if b.name == block] or [
+            b for b in blocks if b.name.lower() == block.lower()]
+        if not wanted:
+            names = ", ".join(b.name for b in blocks) or "none with atoms"
+            raise StructureError(f"no data block named '{block}' (found: {names})")
+        blocks = wanted
+    if not blocks:
+        if len(doc) == 1:
+            raise StructureError(f"no atom sites in data block '{doc[0].name}'")
+        raise StructureError(f"no atom sites in any of the {len(doc)} data blocks")
+
+    several = len(blocks) > 1 or len(doc) > 1
+    crystals = []
+    for b in blocks:
+        src = f"{source}#{b.name}" if several else source
+        try:
+            crystals.append(_crystal_from_block(b, src))
+        except StructureError as exc:
+            if several:
+                raise StructureError(f"data block '{b.name}': {exc}") from None
+            raise
+        except Exception as exc:  # anything unforeseen still becomes a StructureError
+            where = f"data block '{b.name}': " if several else ""
+            raise StructureError(
+                f"{where}unreadable CIF block ({type(exc).__name__}: {_one_line(exc, 100)})") from None
+    return crystals
+
+
+_ATOM_KEYS = ("_atom_site_fract_x", "_atom_site.fract_x", "_atom_site_label",
+              "_atom_site.label", "_atom_site_type_symbol", "_atom_site.type_symbol")
+
+
+def _has_atoms(block) -> bool:
+    for key in _ATOM_KEYS:
+        if block.find_values(key):
+            return True
+    return False
+
+
+def _atom_loop(block) -> tuple[list[str], list[str]]:
+    """Lower-case atom-site tags (underscore form) and the flat list of values."""
+    for key in _ATOM_KEYS:
+        col = block.find_values(key)
+        if col:
+            loop = col.get_loop()
+            if loop is not None:
+                tags = [t.lower().replace("_atom_site.", "_atom_site_", 1) for t in loop.tags]
+                return tags, loop.values
+            break
+    # atom sites given as single key-value pairs (one atom)
+    tags, values = [], []
+    for item in block:
+        pair = item.pair
+        if pair is not None:
+            tag = pair[0].lower().replace("_atom_site.", "_atom_site_", 1)
+            if tag.startswith("_atom_site_") and not tag.startswith("_atom_site_aniso"):
+                tags.append(tag)
+                values.append(pair[1])
+    return tags, values
+
+
+def _unquote(v: str) -> str:
+    if v and v[0] in "'\";":
+        return gemmi.cif.as_string(v)
+    return v
+
+
+def _num(v: str) -> float:
+    """A CIF number: '1.234(5)' -> 1.234; '?', '.' -> nan."""
+    try:
+        return float(v)
+    except ValueError:
+        pass
+    v = _unquote(v).strip()
+    i = v.find("(")
+    if i > 0 and v.endswith(")"):
+        v = v[:i]
+    try:
+        return float(v)
+    except ValueError:
+        return math.nan
+
+
+def _floats(values: list[str]) -> np.ndarray:
+    try:
+        return np.array(values, dtype=np.float64)
+    except ValueError:
+        return np.array([_num(v) for v in values], dtype=np.float64)
+
+
+def _find_value(block, tags) -> str | None:
+    for tag in tags:
+        v = block.find_value(tag)
+        if v is not None:
+            return v
+    return None
+
+
+def _find_column(block, tags) -> list[str]:
+    for tag in tags:
+        col = block.find_values(tag)
+        if col:
+            return list(col)
+    return []
+
+
+_CELL_KEYS = ("length_a", "length_b", "length_c", "angle_alpha", "angle_beta", "angle_gamma")
+
+
+def _cif_cell(block) -> tuple[float, ...]:
+    vals = [_find_value(block, ("_cell_" + k, "_cell." + k)) for k in _CELL_KEYS]
+    missing = [k for k, v in zip(_CELL_KEYS[:3], vals[:3]) if v is None or _unquote(v) in ("?", ".")]
+    if missing:
+        raise StructureError(f"no unit cell: {', '.join('_cell_' + k for k in missing)} missing")
+    params = []
+    for k, v in zip(_CELL_KEYS, vals):
+        if v is None:  # a missing angle is 90 degrees by the CIF dictionary
+            params.append(90.0)
+            continue
+        x = _num(v)
+        if math.isnan(x):
+            raise StructureError(f"unit cell {k.replace('_', ' ')} is not a number: {_unquote(v)!r}")
+        params.append(x)
+    return tuple(params)
+
+
+def cell_matrix(a: float, b: float, c: float,
+                alpha: float, beta: float, gamma: float) -> np.ndarray:
+    """Lattice vectors as rows: a along x, b in the xy plane, right handed."""
+    for name, x in (("a", a), ("b", b), ("c", c)):
+        if not (math.isfinite(x) and x > 0):
+            raise StructureError(f"bad unit cell: length {name} = {x:g} is not positive")
+    for name, x in (("alpha", alpha), ("beta", beta), ("gamma", gamma)):
+        if not (math.isfinite(x) and 0 < x < 180):
+            raise StructureError(f"impossible cell angle: {name} = {x:g} degrees")
+
+    def cos(x):
+        return 0.0 if abs(x - 90.0) < 1e-10 else math.cos(math.radians(x))
+
+    ca, cb, cg = cos(alpha), cos(beta), cos(gamma)
+    sg = 1.0 if cg == 0.0 else math.sin(math.radians(gamma))
+    cy = (ca - cb * cg) / sg
+    cz2 = 1.0 - cb * cb - cy * cy
+    if cz2 <= 1e-8:
+        raise StructureError(
+            f"impossible cell angles alpha={alpha:g}, beta={beta:g}, gamma={gamma:g}: "
+            "the cell has no volume")
+    return np.array([[a, 0.0, 0.0],
+                     [b * cg, b * sg, 0.0],
+                     [c * cb, c * cy, c * math.sqrt(cz2)]])
+
+
+# ---- elements and charges -------------------------------------------------
+
+_SPECIES_RE = re.compile(r"([A-Za-z]+)(.*)")
+_CHARGE_RES = (re.compile(r"(\d*(?:\.\d+)?)([+-])"),   # Sb3-  Li+  Mn3.5+
+               re.compile(r"([+-])(\d*(?:\.\d+)?)"))   # Fe+3  O-2
+
+
+def _parse_charge(rest: str) -> float:
+    m = _CHARGE_RES[0].fullmatch(rest)
+    if m:
+        mag, sign = m.groups()
+    else:
+        m = _CHARGE_RES[1].fullmatch(rest)
+        if not m:
+            return math.nan
+        sign, mag = m.groups()
+    q = float(mag) if mag else 1.0
+    return -q if sign == "-" else q
+
+
+@lru_cache(maxsize=4096)
+def species(symbol: str, strict: bool = True) -> tuple[int, float]:
+    """Atomic number and formal charge of a CIF type symbol or label.
+
+    'Sb3-' -> (51, -3.0); 'Fe' -> (26, nan); 'D' -> (1, nan).  With
+    ``strict`` (type symbols) two lower-case-led letters that are no element
+    ('Xx', 'Va') are rejected; without it (labels such as 'Ow1') the first
+    letter is tried too.  Returns (0, nan) when no element is found.
+    """
+    m = _SPECIES_RE.match(symbol.strip())
+    if not m:
+        return 0, math.nan
+    letters, rest = m.groups()
+    z = 0
+    if len(letters) >= 2:
+        z = _Z.get(letters[0].upper() + letters[1].lower(), 0)
+        if z:
+            rest = letters[2:] + rest
+        elif not strict or letters[1].isupper():
+            z = _Z.get(letters[0].upper(), 0)
+            rest = letters[1:] + rest
+    else:
+        z = _Z.get(letters.upper(), 0)
+    if not z:
+        return 0, math.nan
+    return z, (_parse_charge(rest) if strict else math.nan)
+
+
+# ---- symmetry -------------------------------------------------------------
+
+_SYMOP_TAGS = ("_space_group_symop_operation_xyz", "_space_group_symop.operation_xyz",
+               "_symmetry_equiv_pos_as_xyz", "_symmetry_equiv.pos_as_xyz")
+_MAGN_OP_TAGS = ("_space_group_symop_magn_operation.xyz", "_space_group_symop.magn_operation_xyz")
+_MAGN_CEN_TAGS = ("_space_group_symop_magn_centering.xyz", "_space_group_symop.magn_centering_xyz")
+_HM_TAGS = ("_space_group_name_H-M_alt", "_space_group.name_H-M_alt",
+            "_symmetry_space_group_name_H-M", "_symmetry.space_group_name_H-M",
+            "_space_group_magn.name_BNS", "_space_group_magn.name_bns")
+_HALL_TAGS = ("_space_group_name_Hall", "_space_group.name_Hall",
+              "_symmetry_space_group_name_Hall", "_symmetry.space_group_name_Hall")
+_NUMBER_TAGS = ("_space_group_IT_number", "_space_group.IT_number",
+                "_symmetry_Int_Tables_number", "_symmetry.Int_Tables_number")
+
+_DEN = 24  # gemmi's denominator for symmetry operations
+
+
+def _encode(rot: np.ndarray, tran: np.ndarray) -> np.ndarray:
+    """Integer key of each operation (rotation entries in -2..2, translations mod 24)."""
+    r = (rot.reshape(len(rot), 9) + 2) @ (5 ** np.arange(9, dtype=np.int64))
+    t = (tran % _DEN) @ np.array([1, _DEN, _DEN * _DEN], dtype=np.int64)
+    return r * _DEN ** 3 + t
+
+
+def _group(ops: list[gemmi.Op]) -> tuple[np.ndarray, np.ndarray, bool]:
+    """Rotations (m,3,3) and translations (m,3) of the group the operations
+    generate, identity first; the flag tells whether operations had to be added."""
+    rot = np.array([op.rot for op in ops], dtype=np.int64)
+    tran = np.array([op.tran for op in ops], dtype=np.int64).reshape(-1, 3) % _DEN
+    if np.any(rot % _DEN):
+        raise StructureError("bad symmetry operator: rotation part is not integral")
+    rot = (rot // _DEN).reshape(-1, 3, 3)
+    if np.any(np.abs(rot) > 2):
+        raise StructureError("bad symmetry operator: unusual rotation part")
+    keys = _encode(rot, tran)
+    _, first = np.unique(keys, return_index=True)
+    first.sort()
+    rot, tran, keys = rot[first], tran[first], keys[first]
+    n_given = len(keys)
+    for _ in range(8):
+        r2 = np.einsum("iab,jbc->ijac", rot, rot).reshape(-1, 3, 3)
+        t2 = (np.einsum("iab,jb->ija", rot, tran) + tran[:, None, :]).reshape(-1, 3) % _DEN
+        if np.any(np.abs(r2) > 2):
+            raise StructureError("symmetry operators do not form a space group")
+        k2 = _encode(r2, t2)
+        new = ~np.isin(k2, keys)
+        if not new.any():
+            break
+        k_new, idx = np.unique(k2[new], return_index=True)
+        rot = np.concatenate([rot, r2[new][idx]])
+        tran = np.concatenate([tran, t2[new][idx]])
+        keys = np.concatenate([keys, k_new])
+        if len(keys) > 192:
+            raise StructureError("symmetry operators do not form a space group")
+    else:
+        raise StructureError("symmetry operators do not form a space group")
+    ident = _encode(np.eye(3, dtype=np.int64)[None], np.zeros((1, 3), dtype=np.int64))[0]
+    order = np.argsort(keys != ident, kind="stable")
+    return (rot[order].astype(np.float64), tran[order].astype(np.float64) / _DEN,
+            len(keys) != n_given)
+
+
+@lru_cache(maxsize=4096)
+def _group_from_triplets(triplets: tuple[str, ...], centerings: tuple[str, ...] = ()):
+    ops = []
+    for trip in triplets:
+        t = _unquote(trip).strip()
+        if t.count(",") == 3:  # magnetic operation with time reversal
+            t = t.rsplit(",", 1)[0]
+        try:
+            ops.append(gemmi.Op(t))
+        except (RuntimeError, ValueError):
+            raise StructureError(f"bad symmetry operator: {t!r}") from None
+    cens = []
+    for trip in centerings:
+        t = _unquote(trip).strip()
+        if t.count(",") == 3:
+            t = t.rsplit(",", 1)[0]
+        try:
+            cens.append(gemmi.Op(t))
+        except (RuntimeError, ValueError):
+            raise StructureError(f"bad centering operator: {t!r}") from None
+    if cens:
+        ops = [c * op for c in cens for op in ops]
+    if not ops:
+        raise StructureError("no symmetry operators")
+    return _group(ops)
+
+
+@lru_cache(maxsize=1024)
+def _group_from_spacegroup(xhm: str):
+    sg = gemmi.find_spacegroup_by_name(xhm)
+    return _group(list(sg.operations()))
+
+
+@lru_cache(maxsize=1024)
+def _group_from_hall(hall: str):
+    try:
+        gops = gemmi.symops_from_hall(hall)
+    except (RuntimeError, ValueError):
+        raise StructureError(f"unknown Hall symbol {hall!r}") from None
+    return _group(list(gops))
+
+
+def _symmetry(block, alpha: float, gamma: float):
+    """Candidate symmetry groups for a block and a description for meta.
+
+    Returns ([(rot, tran, completed, setting), ...], hm_name, how).  More than
+    one candidate only when just a space-group name is given and the group has
+    two origin choices.
+    """
+    hm = _find_value(block, _HM_TAGS)
+    hm = _unquote(hm).strip() if hm is not None else ""
+    if hm in ("?", "."):
+        hm = ""
+
+    triplets = _find_column(block, _SYMOP_TAGS)
+    centerings: list[str] = []
+    if not triplets:
+        triplets = _find_column(block, _MAGN_OP_TAGS)
+        if triplets:
+            centerings = _find_column(block, _MAGN_CEN_TAGS)
+    triplets = [t for t in triplets if _unquote(t).strip() not in ("?", ".")]
+    if triplets:
+        rot, tran, completed = _group_from_triplets(tuple(triplets), tuple(centerings))
+        return [(rot, tran, completed, "")], hm, "operators"
+
+    hall = _find_value(block, _HALL_TAGS)
+    hall = _unquote(hall).strip() if hall is not None else ""
+    if hall and hall not in ("?", "."):
+        rot, tran, completed = _group_from_hall(hall)
+        return [(rot, tran, completed, "")], hm, "hall"
+
+    how = "hm"
+    if not hm:
+        number = _find_value(block, _NUMBER_TAGS)
+        if number is None or _unquote(number).strip() in ("?", "."):
+            ident = np.eye(3)[None], np.zeros((1, 3))
+            return [(ident[0], ident[1], False, "P 1")], "", "none"
+        try:
+            sg = gemmi.find_spacegroup_by_number(int(_num(number)))
+        except (RuntimeError, ValueError, OverflowError):
+            raise StructureError(f"unknown space group number {_unquote(number)!r}") from None
+        name, how = sg.hm, "number"
+    else:
+        name = hm
+    settings = []
+    for prefer in ("2", "1"):
+        try:
+            sg = gemmi.find_spacegroup_by_name(name, alpha, gamma, prefer)
+        except (RuntimeError, ValueError):
+            sg = None
+        if sg is not None and sg.xhm() not in settings:
+            settings.append(sg.xhm())
+    if not settings:
+        raise StructureError(f"unknown space group {name!r} and no symmetry operators")
+    return [(*_group_from_spacegroup(x), x) for x in settings], hm, how
+
+
+# ---- symmetry expansion ---------------------------------------------------
+
+def _expand(frac: np.ndarray, occ: np.ndarray, cell: np.ndarray,
+            rot: np.ndarray, tran: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """All images of the sites in the unit cell: (positions, index of the site)."""
+    n, m = len(frac), len(rot)
+    if m == 1:
+        return _wrap(frac @ rot[0].T + tran[0]), np.arange(n)
+    pos = np.einsum("kij,nj->nki", rot, frac) + tran  # (n, m, 3)
+    pos -= np.floor(pos)
+    metric = cell @ cell.T
+    earlier = np.tril(np.ones((m, m), dtype=bool), -1)
+    keep = np.empty((n, m), dtype=bool)
+    step = max(1, 2_000_000 // (m * m * 3))
+    for s in range(0, n, step):
+        p = pos[s:s + step]
+        d = p[:, :, None, :] - p[:, None, :, :]
+        d -= np.rint(d)
+        d2 = np.einsum("...i,ij,...j->...", d, metric, d)
+        same = ((d2 < MERGE_TOL ** 2) & earlier).any(-1)
+        crowd = ((d2 < CROWD_TOL ** 2) & earlier).any(-1)
+        n_same = m - same.sum(-1)
+        n_crowd = m - crowd.sum(-1)
+        # images crowding closer than CROWD_TOL are one atom unless they are
+        # alternative positions of a partly occupied site
+        merge = occ[s:s + step] * n_same / n_crowd > 1.0 + OCC_TOL
+        keep[s:s + step] = ~np.where(merge[:, None], crowd, same)
+    site, image = np.nonzero(keep)
+    return _wrap(pos[site, image]), site
+
+
+def _wrap(frac: np.ndarray) -> np.ndarray:
+    frac = frac - np.floor(frac)
+    frac[frac >= 1.0] = 0.0
+    return frac
+
+
+def _min_distance(frac: np.ndarray, cell: np.ndarray) -> float:
+    if len(frac) < 2:
+        return math.inf
+    d = frac[:, None, :] - frac[None, :, :]
+    d -= np.rint(d)
+    d2 = np.einsum("...i,ij,...j->...", d, cell @ cell.T, d)
+    d2[np.diag_indices(len(frac))] = np.inf
+    return float(np.sqrt(d2.min()))
+
+
+# ---- one block ------------------------------------------------------------
+
+def _crystal_from_block(block, source: str) -> Crystal:
+    tags, values = _atom_loop(block)
+    ncol = len(tags)
+    nrow = len(values) // ncol if ncol else 0
+    if nrow == 0:
+        raise StructureError("truncated CIF: the atom-site loop has no values")
+    col = {t: i for i, t in enumerate(tags)}
+
+    def column(tag):
+        i = col.get(tag)
+        return None if i is None else values[i::ncol]
+
+    xs, ys, zs = (column("_atom_site_fract_" + a) for a in "xyz")
+    if xs is None or ys is None or zs is None:
+        if "_atom_site_cartn_x" in col:
+            raise StructureError("only Cartesian atom coordinates given; fractional ones are needed")
+        raise StructureError("no fractional atom coordinates (_atom_site_fract_x/y/z)")
+    labels = column("_atom_site_label")
+    types = column("_atom_site_type_symbol")
+    if labels is None and types is None:
+        raise StructureError("atom sites have neither labels nor type symbols")
+    labels = [_unquote(v) for v in (labels if labels is not None else types)]
+
+    flags = column("_atom_site_calc_flag")
+    rows = None
+    if flags is not None:  # dummy atoms are not part of the structure
+        rows = [i for i, f in enumerate(flags) if _unquote(f).lower() != "dum"]
+        if len(rows) == nrow:
+            rows = None
+        else:
+            def pick(seq):
+                return None if seq is None else [seq[i] for i in rows]
+            xs, ys, zs, types = pick(xs), pick(ys), pick(zs), pick(types)
+            labels = pick(labels)
+            nrow = len(rows)
+            if nrow == 0:
+                raise StructureError("only dummy atom sites")
+
+    frac = _floats(xs + ys + zs).reshape(3, nrow).T
+    if not np.isfinite(frac).all():
+        bad = int(np.nonzero(~np.isfinite(frac).all(1))[0][0])
+        raise StructureError(f"missing or unreadable coordinates for site '{labels[bad]}'")
+
+    occ_raw = column("_atom_site_occupancy")
+    if occ_raw is None:
+        occ = np.ones(nrow)
+    else:
+        if rows is not None:
+            occ_raw = [occ_raw[i] for i in rows]
+        occ = _floats(occ_raw)
+        occ[np.isnan(occ)] = 1.0  # '?' or '.': not given
+        bad = np.nonzero((occ <= 0.0) | (occ > 1.0 + OCC_TOL) | ~np.isfinite(occ))[0]
+        if len(bad):
+            i = int(bad[0])
+            what = "is not positive" if occ[i] <= 0 else "exceeds 1"
+            raise StructureError(f"occupancy {occ[i]:g} of site '{labels[i]}' {what}")
+        np.minimum(occ, 1.0, out=occ)
+
+    numbers = np.empty(nrow, dtype=np.int64)
+    charges = np.empty(nrow, dtype=np.float64)
+    oxidation = None
+    for i in range(nrow):
+        sym = _unquote(types[i]) if types is not None else ""
+        if sym and sym not in ("?", "."):
+            z, q = species(sym)
+            if not z:
+                raise StructureError(f"unknown element symbol '{sym}' (site '{labels[i]}')")
+            if q != q:  # no charge in the symbol: try the _atom_type loop
+                if oxidation is None:
+                    oxidation = _oxidation_numbers(block)
+                q = oxidation.get(sym, q)
+        else:
+            z, q = species(labels[i], False)
+            if not z:
+                raise StructureError(
+                    f"cannot tell the element of site '{labels[i]}' (no _atom_site_type_symbol)")
+        numbers[i] = z
+        charges[i] = q
+
+    a, b, c, alpha, beta, gamma = _cif_cell(block)
+    cell = cell_matrix(a, b, c, alpha, beta, gamma)
+
+    candidates, hm, how = _symmetry(block, alpha, gamma)
+    best = None
+    for rot, tran, completed, setting in candidates:
+        pos, site = _expand(frac, occ, cell, rot, tran)
+        if best is not None:
+            # only a space-group name with two origin choices: take the
+            # setting that puts more atoms on special positions, then the one
+            # that keeps atoms further apart
+            if len(pos) > len(best[0]):
+                continue
+            if len(pos) == len(best[0]) and _min_distance(pos, cell) <= _min_distance(best[0], cell):
+                continue
+        best = (pos, site, setting, completed, len(rot))
+    pos, site, setting, completed, nops = best
+
+    meta = {"format": "cif", "spacegroup": hm, "symmetry": how, "nsymops": nops}
+    if setting:
+        meta["setting"] = setting
+    if completed:
+        meta["symmetry_completed"] = True
+    return Crystal(
+        cell=cell,
+        frac=pos,
+        numbers=numbers[site],
+        occupancy=occ[site],
+        labels=np.array(labels)[site],
+        charges=charges[site],
+        name=block.name,
+        source=source,
+        meta=meta,
+    )
+
+
+def _oxidation_numbers(block) -> dict[str, float]:
+    symbols = _find_column(block, ("_atom_type_symbol", "_atom_type.symbol"))
+    numbers = _find_column(block, ("_atom_type_oxidation_number", "_atom_type.oxidation_number"))
+    if not symbols or len(symbols) != len(numbers):
+        return {}
+    out = {}
+    for s, q in zip(symbols, numbers):
+        q = _num(q)
+        if not math.isnan(q):
+            out[_unquote(s)] = q
+    return out
+
+
+# --------------------------------------------------------------------------
+# other formats (ase, pymatgen), imported lazily
+# --------------------------------------------------------------------------
+
+def _read_object(obj) -> list[Crystal]:
+    module = type(obj).__module__ or ""
+    if module.startswith("pymatgen"):
+        return [_from_pymatgen(obj, "", "")]
+    if module.startswith("ase"):
+        return [_from_ase(obj, "", "")]
+    raise StructureError(f"cannot read an object of type {type(obj).__name__}")
+
+
+def _read_with_ase(path: Path) -> list[Crystal]:
+    import ase.io
+
+    lname = path.name.lower()
+    fmt = None
+    if path.name.startswith(_VASP_PREFIXES) or lname.endswith(_VASP_SUFFIXES):
+        fmt = "vasp"
+    elif lname.endswith(_XYZ_SUFFIXES):
+        fmt = "extxyz"
+    data = _read_bytes(path)
+    if not data.strip():
+        raise StructureError("empty file")
+    _decode(data)  # rejects binary junk with a clear message
+    try:
+        images = ase.io.read(str(path), index=":", format=fmt)
+    except StructureError:
+        raise
+    except Exception as exc:
+        what = fmt or "structure"
+        raise StructureError(f"cannot read {what} file: {_one_line(exc, 120) or type(exc).__name__}") from None
+    if not isinstance(images, list):
+        images = [images]
+    if not images:
+        raise StructureError("no structure in file")
+    stem = path.name
+    for suffix in (".gz", ".extxyz", ".xyz", ".vasp", ".poscar"):
+        if stem.lower().endswith(suffix):
+            stem = stem[: -len(suffix)]
+    out = []
+    for i, atoms in enumerate(images):
+        if len(images) == 1:
+            out.append(_from_ase(atoms, str(path), stem, fmt or "ase"))
+        else:
+            out.append(_from_ase(atoms, f"{path}#{i}", f"{stem}#{i}", fmt or "ase"))
+    return out
+
+
+def _from_ase(atoms, source: str, name: str, fmt: str = "ase") -> Crystal:
+    try:
+        pbc = np.asarray(atoms.pbc, dtype=bool)
+        cell = np.array(atoms.cell, dtype=np.float64)
+    except Exception as exc:
+        raise StructureError(f"not a usable ase Atoms object: {_one_line(exc, 100)}") from None
+    if not pbc.all() or abs(np.linalg.det(cell)) < 1e-8:
+        raise StructureError(f"no periodic cell (periodic in {int(pbc.sum())} of 3 directions)")
+    if len(atoms) == 0:
+        raise StructureError("no atoms")
+    numbers = np.array(atoms.numbers, dtype=np.int64)
+    if (numbers <= 0).any():
+        raise StructureError("unknown element (atomic number 0) in structure")
+    frac = np.linalg.solve(cell.T, np.asarray(atoms.positions, dtype=np.float64).T).T
+    occ = np.ones(len(numbers))
+    extra_pos, extra_z, extra_occ = [], [], []
+    info = getattr(atoms, "info", {}) or {}
+    occ_info = info.get("occupancy")
+    if isinstance(occ_info, dict) and occ_info:
+        kinds = atoms.arrays.get("spacegroup_kinds")
+        if kinds is None:
+            tags = atoms.get_tags()
+            kinds = tags if any(str(k) in occ_info for k in tags) else np.arange(len(numbers))
+        symbols = atoms.get_chemical_symbols()
+        for i, kind in enumerate(kinds):
+            per_species = occ_info.get(str(kind))
+            if not isinstance(per_species, dict):
+                continue
+            for sym, o in per_species.items():
+                if sym == symbols[i]:
+                    occ[i] = float(o)
+                else:
+                    z = _Z.get(sym, 0)
+                    if not z:
+                        raise StructureError(f"unknown element symbol '{sym}'")
+                    extra_pos.append(frac[i])
+                    extra_z.append(z)
+                    extra_occ.append(float(o))
+    if extra_pos:
+        frac = np.vstack([frac, extra_pos])
+        numbers = np.concatenate([numbers, extra_z])
+        occ = np.concatenate([occ, extra_occ])
+    _check_occupancy(occ, None)
+    n = len(numbers)
+    labels = atoms.arrays.get("labels") if hasattr(atoms, "arrays") else None
+    if labels is None or len(labels) != n:
+        labels = np.array([""] * n)
+    return Crystal(
+        cell=cell,
+        frac=_wrap(frac),
+        numbers=numbers,
+        occupancy=np.minimum(occ, 1.0),
+        labels=np.asarray(labels, dtype=str),
+        charges=np.full(n, np.nan),
+        name=name,
+        source=source,
+        meta={"format": fmt, "spacegroup": ""},
+    )
+
+
+def _check_occupancy(occ: np.ndarray, labels) -> None:
+    bad = np.nonzero((occ <= 0.0) | (occ > 1.0 + OCC_TOL) | ~np.isfinite(occ))[0]
+    if len(bad):
+        i = int(bad[0])
+        what = "is not positive" if not occ[i] > 0 else "exceeds 1"
+        site = f" of site '{labels[i]}'" if labels is not None and labels[i] else f" of atom {i + 1}"
+        raise StructureError(f"occupancy {occ[i]:g}{site} {what}")
+
+
+def _read_pymatgen_json(path: Path) -> list[Crystal]:
+    data = _read_bytes(path)
+    if not data.strip():
+        raise StructureError("empty file")
+    text = _decode(data)
+    try:
+        obj = json.loads(text)
+    except ValueError as exc:
+        raise StructureError(f"invalid JSON: {_one_line(exc, 120)}") from None
+    items = obj if isinstance(obj, list) else [obj]
+    if not items:
+        raise StructureError("no structure in file")
+    from pymatgen.core import Structure
+
+    stem = path.name[: -len(".json.gz")] if path.name.lower().endswith(".gz") else path.stem
+    out = []
+    for i, item in enumerate(items):
+        if not isinstance(item, dict):
+            raise StructureError("JSON file does not hold a pymatgen Structure")
+        cls = item.get("@class", "")
+        if "lattice" not in item or cls in ("Molecule", "IMolecule"):
+            if cls in ("Molecule", "IMolecule") or "sites" in item:
+                raise StructureError("no periodic cell (a molecule, not a crystal)")
+            raise StructureError("JSON file does not hold a pymatgen Structure")
+        try:
+            s = Structure.from_dict(item)
+        except Exception as exc:
+            raise StructureError(f"bad pymatgen Structure JSON: {_one_line(exc, 120)}") from None
+        if len(items) == 1:
+            out.append(_from_pymatgen(s, str(path), stem))
+        else:
+            out.append(_from_pymatgen(s, f"{path}#{i}", f"{stem}#{i}"))
+    return out
+
+
+def _from_pymatgen(s, source: str, name: str) -> Crystal:
+    if not hasattr(s, "lattice"):
+        raise StructureError("no periodic cell (a molecule, not a crystal)")
+    try:
+        cell = np.array(s.lattice.matrix, dtype=np.float64)
+        rows = []
+        for site in s:
+            label = getattr(site, "label", None) or ""
+            species_str = site.species_string
+            if label == species_str and len(site.species) > 1:
+                label = ""
+            for sp, o in site.species.items():
+                z = int(getattr(sp, "Z", 0) or 0)
+                if z <= 0:
+                    raise StructureError(f"unknown element symbol '{sp}'")
+                q = getattr(sp, "oxi_state", None)
+                rows.append((site.frac_coords, z, float(o),
+                             label, math.nan if q is None else float(q)))
+    except StructureError:
+        raise
+    except Exception as exc:
+        raise StructureError(f"not a usable pymatgen Structure: {_one_line(exc, 100)}") from None
+    if not rows:
+        raise StructureError("no atoms")
+    if abs(np.linalg.det(cell)) < 1e-8:
+        raise StructureError("no periodic cell (zero cell volume)")
+    frac = np.array([r[0] for r in rows], dtype=np.float64)
+    occ = np.array([r[2] for r in rows], dtype=np.float64)
+    labels = np.array([r[3] for r in rows], dtype=str)
+    _check_occupancy(occ, labels)
+    if not name:
+        name = s.composition.reduced_formula
+    return Crystal(
+        cell=cell,
+        frac=_wrap(frac),
+        numbers=np.array([r[1] for r in rows], dtype=np.int64),
+        occupancy=np.minimum(occ, 1.0),
+        labels=labels,
+        charges=np.array([r[4] for r in rows], dtype=np.float64),
+        name=name,
+        source=source,
+        meta={"format": "pymatgen", "spacegroup": ""},
+    )

@@ -1,0 +1,1 @@
+"""Render stage: results to text, JSON and the formats CI systems read."""
