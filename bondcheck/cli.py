@@ -42,7 +42,26 @@ def build_parser() -> argparse.ArgumentParser:
 
     e = sub.add_parser("explain", help="explain what a finding means")
     e.add_argument("slug", nargs="?", help="finding slug; omit to list them all")
+    for mod in _command_modules():
+        mod.register(sub)
     return p
+
+
+# Further subcommands live in bondcheck/commands/<name>.py, each with
+# register(subparsers) (adding a parser whose defaults set run=<function>)
+# and a run(args) -> exit status. Keep those modules light to import.
+COMMANDS = ("scan", "summary", "report", "baseline")
+
+
+def _command_modules():
+    import importlib
+
+    for name in COMMANDS:
+        try:
+            yield importlib.import_module(f"bondcheck.commands.{name}")
+        except ModuleNotFoundError as exc:
+            if exc.name != f"bondcheck.commands.{name}":
+                raise
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -50,7 +69,9 @@ def main(argv: list[str] | None = None) -> int:
     args = parser.parse_args(argv)
     if args.command == "explain":
         return _explain(args.slug)
-    return _check(parser, args)
+    if args.command == "check":
+        return _check(parser, args)
+    return args.run(args)
 
 
 def _explain(slug: str | None) -> int:

@@ -1,0 +1,1 @@
+"""Subcommands beyond check and explain; see cli.COMMANDS."""
