@@ -32,7 +32,7 @@ from .bonds import Contacts
 from .record import Crystal
 from .symmetry import Sites
 
-TOL = 0.05  # electrons per anion
+TOL = 0.01  # electrons per anion, for closing the count
 # Pauling, J. Am. Chem. Soc. 69, 542 (1947): d(n) = d(1) - 0.60 log10 n.
 PAULING_K = 0.60
 DOUBLE_ORDER = 1.3  # bond order from length above which a double bond is allowed
@@ -41,6 +41,9 @@ TRIPLE_ORDER = 2.5
 # cations' own bonds to anions (edge- and face-sharing polyhedra put cations
 # close without bonding them): common practice, no source.
 CC_BRIDGE = 1.25
+# Bonds this short (ratio d/(r_i + r_j)) are covalent; a p-block cation with
+# four of them, near-equal, has no lone pair (common practice, no source).
+SATURATED_RATIO = 1.06
 # Most electronegative metal accepted as an anion when no p-block element is
 # present (aurides, platinides).
 METAL_ANION_EN = 2.2
@@ -142,14 +145,15 @@ def count(
     candidates = candidate_partitions(crystal)
     if not candidates:
         return None
-    tried = []
-    for an, why in candidates:
-        c = ctx.evaluate(an, why)
-        tried.append(c)
-        if c.valid and c.closure.closes:
-            if len(tried) > 1:
-                c.reason += "; smallest anion set for which the count closes"
-            return c
+    tried = [ctx.evaluate(an, why) for an, why in candidates]
+    closing = [c for c in tried if c.valid and c.closure.closes]
+    if closing:
+        # Cheapest closure (fewest unusual oxidation states and lone pairs);
+        # among equals the smallest anion set.
+        best = min(closing, key=lambda c: (round(c.closure.cost, 6), len(c.anions)))
+        if len(tried) > 1:
+            best.reason += "; of the splits tried, the simplest that closes the count"
+        return best
     # Nothing closes: report the natural polyanion split.
     an, why = ctx.polyanion_split(candidates[0][0])
     for c in tried:
@@ -270,7 +274,8 @@ class _Context:
                     note = f"{sm} is left as a cation bonded to {elements.symbols()[b if more == a else a]}"
                     break
 
-        closure = self._close(role, per, cc, aa, residual * n_anion + cc_e, n_anion)
+        saturated = self._saturated(role, ca)
+        closure = self._close(role, per, cc, aa, residual * n_anion + cc_e, n_anion, saturated)
         cations = [s for s in self.present if s not in anions]
         return Count(
             anions=list(anions),
@@ -324,11 +329,26 @@ class _Context:
         short = 2.0 * float(np.sum((bw * extra)[usable]))
         return short, planar
 
-    def _close(self, role, per, cc, aa, keep_needed: float, n_anion: float) -> Closure:
+    def _saturated(self, role, ca) -> np.ndarray:
+        """Cations with four or more short, near-equal bonds to anions (a
+        tetrahedral framework atom): no room for a lone pair."""
+        n = self.crystal.natoms
+        ratio = self.contacts.ratio[self.bonded]
+        short = ca & (ratio <= SATURATED_RATIO)
+        ends = np.concatenate([self.bi[short], self.bj[short]])
+        dd = np.concatenate([self.bd[short], self.bd[short]])
+        cnt = np.bincount(ends, minlength=n)
+        lo = np.full(n, np.inf)
+        hi = np.zeros(n)
+        np.minimum.at(lo, ends, dd)
+        np.maximum.at(hi, ends, dd)
+        return ~role & (cnt >= 4) & (hi <= lo * 1.05)
+
+    def _close(self, role, per, cc, aa, keep_needed: float, n_anion: float, saturated) -> Closure:
         """Find kept electrons per cation group (lone pairs, d electrons,
         cation-cation bonds) and pi electrons that make the count close."""
-        tol = TOL * max(n_anion, 1.0)
-        options = self._group_options(role, per)
+        tol = max(TOL * n_anion, 0.02)
+        options = self._group_options(role, per, saturated)
         totals = _reachable(options)
         pi_short = pi_planar = 0.0
         best = _match(totals, keep_needed, tol)
@@ -352,7 +372,7 @@ class _Context:
         from_planar = min(pi, pi_planar)
         return Closure(True, keep, pi, pi - from_planar, from_planar, mixed, cost)
 
-    def _group_options(self, role, per):
+    def _group_options(self, role, per, saturated):
         """Per cation group: (group index, weight, {kept electrons per atom: cost})."""
         out = []
         for g, (site, zz) in enumerate(self.groups):
@@ -369,6 +389,8 @@ class _Context:
                 v = elements.valence(sym)
                 opts = elements.keep_options(sym)
             if elements.block(sym) == "p" or sym in self.valence_override:
+                if saturated[atoms].all():
+                    opts = {0: 0}
                 opts = {ccb + k: c for k, c in opts.items()}
             else:
                 opts = {k: c for k, c in opts.items() if k >= ccb - 1e-6}

@@ -55,6 +55,8 @@ def _positions(crystal: Crystal):
 def find_sites(crystal: Crystal, symprec: float = SYMPREC) -> Sites:
     import spglib
 
+    if hasattr(spglib, "error"):
+        spglib.error.OLD_ERROR_HANDLING = False
     pos_index, positions, types = _positions(crystal)
     npos = positions.shape[0]
     ds = None

@@ -1,0 +1,129 @@
+"""Compounds shipped with ase and pymatgen.
+
+ase's bundled COD mineral CIFs (ase/test/testdata/minerals) and pymatgen's
+bundled structures (pymatgen/util/structures). Expected chemistry is
+well-known structural chemistry (common practice, no source) unless a source
+is named.
+"""
+import pytest
+
+from bondcheck.api import check
+
+from .conftest import site
+
+
+def test_cobaltite_as_s_pairs(minerals):
+    # COD 9004218 cobaltite CoAsS: [AsS]3- pairs, Co3+ low-spin d6.
+    r = check(minerals / "cod_9004218.cif")
+    assert r.verdict == "consistent"
+    assert set(r.anions) == {"As", "S"} and r.cations == ["Co"]
+    assert r.vec_anion == pytest.approx(10.0)  # (9 + 5 + 6) / 2
+    assert r.aa_observed == pytest.approx(1.0)
+    assert r.residual == pytest.approx(3.0)  # 6 electrons per formula kept as Co d6
+    assert site(r, element="As")["formal_charge"] == pytest.approx(-2)
+    assert site(r, element="S")["formal_charge"] == pytest.approx(-1)
+    assert site(r, element="Co")["formal_charge"] == pytest.approx(3)
+    assert "d-electrons" in r.causes
+
+
+def test_molybdenite_mo_d2(minerals):
+    # COD 9007661 molybdenite MoS2: S2- only, Mo4+ d2, no S-S or Mo-Mo bonds.
+    r = check(minerals / "cod_9007661.cif")
+    assert r.verdict == "consistent"
+    assert r.anions == ["S"]
+    assert r.aa_observed == 0 and r.cc_observed == 0
+    assert r.residual == pytest.approx(1.0)  # 2 d electrons over 2 S
+    assert site(r, element="Mo")["formal_charge"] == pytest.approx(4)
+    assert "d-electrons" in r.causes
+
+
+def test_moissanite_aa_zero(minerals):
+    # COD 1010995 moissanite 3C SiC: C4- with no C-C bonds, VEC 8.
+    r = check(minerals / "cod_1010995.cif")
+    assert r.verdict == "consistent"
+    assert r.anions == ["C"]
+    assert r.vec_anion == pytest.approx(8.0)
+    assert r.aa_observed == 0 and r.residual == 0
+    assert site(r, element="Si")["coordination"] == pytest.approx(4)
+
+
+def test_cristobalite(minerals):
+    # COD 9017338 cristobalite SiO2: SiO4 tetrahedra, O two-coordinate.
+    r = check(minerals / "cod_9017338.cif")
+    assert r.verdict == "consistent" and r.causes == []
+    assert r.vec_anion == pytest.approx(8.0)
+    assert site(r, element="O")["coordination"] == pytest.approx(2)
+    assert site(r, element="Si")["coordination"] == pytest.approx(4)
+
+
+def test_heazlewoodite_ni_ni_bonds(minerals):
+    # COD 9007640 heazlewoodite Ni3S2: metal-rich, short Ni-Ni contacts (about 2.5 A).
+    r = check(minerals / "cod_9007640.cif")
+    assert r.anions == ["S"]
+    assert r.cc_observed > 0
+    assert "cation-cation-bonds" in r.causes
+    assert r.verdict == "consistent"
+    ni = site(r, element="Ni")
+    assert 0 < ni["formal_charge"] < 2  # average Ni(4/3+), common practice, no source
+
+
+def test_breithauptite(minerals):
+    # COD 1010930 breithauptite NiSb (NiAs type): Sb has only Ni neighbours,
+    # Ni-Ni along c (c/2 = 2.57 A); the Sb-Sb contact (3.4 A) is no bond.
+    r = check(minerals / "cod_1010930.cif")
+    assert r.anions == ["Sb"]
+    sb = site(r, element="Sb")
+    assert sb["bonds"] == 0 and sb["coordination"] == 6
+    assert site(r, element="Ni")["bonds"] == 2
+
+
+@pytest.mark.parametrize("name", ["K2O2.json", "Li2O2.json"])
+def test_peroxides_one_o_o_bond(pmg_structures, name):
+    r = check(pmg_structures / name)
+    assert r.verdict == "consistent"
+    assert r.anions == ["O"]
+    assert r.vec_anion == pytest.approx(7.0)
+    assert r.aa_observed == pytest.approx(1.0)
+    assert site(r, element="O")["formal_charge"] == pytest.approx(-1)
+
+
+def test_bundled_graphite_and_silicon(pmg_structures):
+    g = check(pmg_structures / "Graphite.json")
+    assert g.verdict == "consistent" and g.aa_observed == 3 and "pi-bonds" in g.causes
+    si = check(pmg_structures / "Si.json")
+    assert si.verdict == "consistent" and si.aa_observed == 4
+
+
+def test_tlbise2_lone_pairs(pmg_structures):
+    # TlBiSe2: Tl+ and Bi3+ each keep an ns2 pair; Se2- isolated.
+    r = check(pmg_structures / "TlBiSe2.json")
+    assert r.verdict == "consistent"
+    assert r.residual == pytest.approx(2.0)  # 4 electrons per formula over 2 Se
+    assert "lone-pairs" in r.causes
+    assert site(r, element="Tl")["formal_charge"] == pytest.approx(1)
+    assert site(r, element="Bi")["formal_charge"] == pytest.approx(3)
+
+
+def test_lifepo4_fe2(pmg_structures):
+    r = check(pmg_structures / "LiFePO4.json")
+    assert r.verdict == "consistent"
+    assert r.anions == ["O"]
+    assert site(r, element="Fe")["formal_charge"] == pytest.approx(2)
+    assert site(r, element="P")["formal_charge"] == pytest.approx(5)
+
+
+def test_srtio3(pmg_structures):
+    r = check(pmg_structures / "SrTiO3.json")
+    assert r.verdict == "consistent" and r.residual == 0
+    assert site(r, element="Ti")["formal_charge"] == pytest.approx(4)
+
+
+def test_lgps_partial_occupancy(pmg_structures):
+    # Li10GeP2S12 (pymatgen's bundled model with partial Li and mixed Ge/P sites):
+    # isolated PS4 and GeS4 tetrahedra, VEC_S = 8 on average.
+    r = check(pmg_structures / "Li10GeP2S12.json")
+    assert r.verdict == "consistent"
+    assert r.anions == ["S"]
+    assert r.vec_anion == pytest.approx(8.0, abs=0.02)
+    assert "partial-occupancy" in [f.slug for f in r.findings]
+    assert any(s["occupancy"] < 1 for s in r.sites)
