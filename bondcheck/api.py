@@ -70,7 +70,7 @@ class Result:
 
 
 def _r3(x: float | None) -> float | None:
-    return None if x is None or not math.isfinite(x) else round(float(x), 3)
+    return None if x is None or not math.isfinite(x) else round(float(x), 3) + 0.0
 
 
 def formula_of(crystal: Crystal) -> tuple[str, float]:

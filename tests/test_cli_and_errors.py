@@ -1,0 +1,147 @@
+"""Command line, JSON contract and bad input."""
+import json
+import os
+import shutil
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+from .conftest import ROOT
+
+GOOD = """data_sic
+_cell_length_a 4.3596
+_cell_length_b 4.3596
+_cell_length_c 4.3596
+_cell_angle_alpha 90
+_cell_angle_beta 90
+_cell_angle_gamma 90
+_symmetry_space_group_name_H-M 'F -4 3 m'
+loop_
+_symmetry_equiv_pos_as_xyz
+x,y,z
+loop_
+_atom_site_label
+_atom_site_type_symbol
+_atom_site_fract_x
+_atom_site_fract_y
+_atom_site_fract_z
+Si1 Si 0 0 0
+C1 C 0.25 0.25 0.25
+"""
+
+BAD = {
+    "empty.cif": b"",
+    "junk.cif": bytes(range(256)) * 8,
+    "truncated.cif": GOOD[: GOOD.index("_atom_site_fract_y")].encode(),
+    "nocell.cif": b"data_x\nloop_\n_atom_site_label\n_atom_site_type_symbol\n_atom_site_fract_x\n_atom_site_fract_y\n_atom_site_fract_z\nSi1 Si 0 0 0\n",
+    "flat.cif": GOOD.replace("_cell_angle_gamma 90", "_cell_angle_gamma 180").encode(),
+    "overlap.cif": GOOD.replace("C1 C 0.25 0.25 0.25", "C1 C 0.25 0.25 0.25\nC2 C 0.2501 0.25 0.25").encode(),
+    "unknown.cif": GOOD.replace("C1 C 0.25", "Q1 Qq 0.25").encode(),
+}
+
+
+def run(*args, cwd=None):
+    return subprocess.run([sys.executable, "-m", "bondcheck.cli", *args], capture_output=True, text=True, cwd=cwd, timeout=300)
+
+
+@pytest.fixture()
+def mixed_dir(tmp_path, minerals):
+    for name, data in BAD.items():
+        (tmp_path / name).write_bytes(data)
+    shutil.copy(minerals / "cod_1010995.cif", tmp_path / "moissanite.cif")
+    shutil.copy(minerals / "cod_9017338.cif", tmp_path / "cristobalite.cif")
+    return tmp_path
+
+
+def test_bad_inputs_get_error_rows_and_the_rest_is_checked(mixed_dir):
+    p = run("check", str(mixed_dir), "--format", "json")
+    assert p.returncode == 2, p.stderr
+    assert "Traceback" not in p.stderr
+    rows = {Path(r["path"]).name: r for r in json.loads(p.stdout)}
+    assert set(rows) == set(BAD) | {"moissanite.cif", "cristobalite.cif"}
+    for name in BAD:
+        r = rows[name]
+        assert r["status"] == "error", (name, r)
+        assert r["error"] and "\n" not in r["error"] and len(r["error"]) < 300, (name, r["error"])
+        assert r["verdict"] is None
+    # Well-known structures (ase's bundled COD 1010995 and 9017338) still come out consistent.
+    assert rows["moissanite.cif"]["verdict"] == "consistent"
+    assert rows["cristobalite.cif"]["verdict"] == "consistent"
+    assert "overlap" in rows["overlap.cif"]["error"]
+    assert "Qq" in rows["unknown.cif"]["error"] or "element" in rows["unknown.cif"]["error"]
+
+
+def test_json_contract(minerals):
+    p = run("check", str(minerals / "cod_9004218.cif"), "--format", "json")
+    assert p.returncode == 0
+    (r,) = json.loads(p.stdout)
+    for key in ("path", "status", "error", "formula", "verdict", "causes", "cations", "anions", "vec_anion",
+                "aa_predicted", "aa_observed", "cc_observed", "residual", "sites"):
+        assert key in r
+    assert r["status"] == "ok" and r["error"] is None
+    for key in ("vec_anion", "aa_predicted", "aa_observed", "cc_observed", "residual"):
+        assert isinstance(r[key], float) and round(r[key], 3) == r[key]
+    for s in r["sites"]:
+        for key in ("label", "element", "multiplicity", "wyckoff", "role", "bonds", "formal_charge", "nearest", "first_unbonded", "gap"):
+            assert key in s
+    # Cobaltite, COD 9004218 (Pca2_1): three sites, all on 4a.
+    assert sorted((s["element"], s["multiplicity"], s["wyckoff"]) for s in r["sites"]) == [("As", 4, "a"), ("Co", 4, "a"), ("S", 4, "a")]
+
+
+def test_exit_status_mismatch(tmp_path, minerals):
+    # Cristobalite (ase's bundled COD 9017338) with its Si site typed as Al: "AlO2" leaves
+    # each O half an electron short (VEC 7.5), so the count cannot close.
+    text = (minerals / "cod_9017338.cif").read_text().replace("\nSi 0.30070", "\nAl 0.30070")
+    (tmp_path / "al_cristobalite.cif").write_text(text)
+    p = run("check", str(tmp_path / "al_cristobalite.cif"), "--format", "json")
+    assert p.returncode == 1
+    (r,) = json.loads(p.stdout)
+    assert r["verdict"] == "mismatch"
+    assert r["vec_anion"] == pytest.approx(7.5)
+    assert r["residual"] == pytest.approx(-0.5)
+
+
+def test_options_anions_and_valence(minerals):
+    # Forcing S alone as the anion in cobaltite leaves As bonded as a cation: stated in the output.
+    p = run("check", str(minerals / "cod_9004218.cif"), "--format", "json", "--anions", "S")
+    (r,) = json.loads(p.stdout)
+    assert r["anions"] == ["S"] and "--anions" in r["partition"]
+    p = run("check", str(minerals / "cod_9004218.cif"), "--valence", "Co=x")
+    assert p.returncode == 2 and "valence" in p.stderr
+    p = run("check", str(minerals / "cod_9004218.cif"), "--anions", "Xx")
+    assert p.returncode == 2
+
+
+def test_explain_lists_and_explains():
+    p = run("explain")
+    assert p.returncode == 0 and "lone-pairs" in p.stdout
+    p = run("explain", "lone-pairs")
+    assert p.returncode == 0 and "What to check next" in p.stdout
+    assert run("explain", "no-such-finding").returncode == 2
+
+
+def test_readme_first_command_on_samples():
+    """The README's first command: bondcheck check sample_structures."""
+    readme = (ROOT / "README.md").read_text()
+    assert "pip install . && bondcheck check sample_structures" in readme
+    exe = shutil.which("bondcheck")
+    cmd = [exe] if exe else [sys.executable, "-m", "bondcheck.cli"]
+    p = subprocess.run(cmd + ["check", "sample_structures", "--format", "json"], cwd=ROOT, capture_output=True, text=True, timeout=300)
+    rows = {Path(r["path"]).name: r for r in json.loads(p.stdout)}
+    assert p.returncode == 2  # KB-08 is deliberately unreadable
+    assert len(rows) == len(list((ROOT / "sample_structures").glob("*.cif")))
+    assert rows["KB-01_mg2si_ingot.cif"]["verdict"] == "consistent"
+    assert rows["KB-03_pbo_red.cif"]["causes"] == ["lone-pairs"]
+    assert rows["KB-04_mg2ge_relabel.cif"]["verdict"] == "mismatch"
+    assert rows["KB-05_cu3au_foil.cif"]["verdict"] == "not-applicable"
+    assert rows["KB-08_truncated_upload.cif"]["status"] == "error"
+    text = subprocess.run(cmd + ["check", "sample_structures"], cwd=ROOT, capture_output=True, text=True, timeout=300).stdout
+    assert "does not prove a structure right" in text
+
+
+def test_help_is_fast_and_light():
+    code = "import sys, bondcheck.cli; bondcheck.cli.build_parser(); print(sorted(m for m in ('pymatgen', 'ase', 'matplotlib', 'dask', 'spglib') if m in sys.modules))"
+    p = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=60)
+    assert p.stdout.strip() == "[]", p.stdout
