@@ -44,6 +44,10 @@ CC_BRIDGE = 1.25
 # Bonds this short (ratio d/(r_i + r_j)) are covalent; a p-block cation with
 # four of them, near-equal, has no lone pair (common practice, no source).
 SATURATED_RATIO = 1.06
+# A further anion element is tried only while its electronegativity is within
+# this step of the previous one (S -> As in cobaltite, Ge -> Ga in a clathrate,
+# F -> O in an oxyfluoride; not O -> P or O -> Al).
+SPLIT_STEP = 0.6
 # Most electronegative metal accepted as an anion when no p-block element is
 # present (aurides, platinides).
 METAL_ANION_EN = 2.2
@@ -116,6 +120,8 @@ def candidate_partitions(crystal: Crystal) -> list[tuple[list[str], str]]:
     out = []
     for k in range(1, len(capable) + 1):
         anions = capable[:k]
+        if k > 1 and en[nums[anions[-2]]] - en[nums[anions[-1]]] > SPLIT_STEP:
+            break
         if k == 1:
             why = f"{anions[0]} is the most electronegative element that can be an anion"
         else:
