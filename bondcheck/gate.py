@@ -392,7 +392,9 @@ def run(cfg: Config, files: list[Path], *, baseline: Baseline | None = None, ful
         changed_since: str | None = None, filtered: int = 0, missing: list[str] = ()) -> GateReport:
     """Check ``files`` and judge every finding. ``full`` says the run covered
     everything the configuration selects, so baseline entries left unmatched
-    are stale and acceptances that matched nothing are unused."""
+    are stale and acceptances that matched nothing are unused; otherwise an
+    unmatched entry is stale when its file was checked, its structure was
+    seen, or its file is gone."""
     from .api import Result, check_crystal
     from .read import read
     from .record import StructureError
@@ -478,7 +480,7 @@ def run(cfg: Config, files: list[Path], *, baseline: Baseline | None = None, ful
         for k, e in enumerate(baseline.entries):
             if k in used:
                 continue
-            if full or e["file"] in checked_files or e["fingerprint"] in checked_fps:
+            if full or e["file"] in checked_files or e["fingerprint"] in checked_fps or not (cfg.root / e["file"]).exists():
                 report.gone.append(e)
     if full:
         report.unused_acceptances = [
