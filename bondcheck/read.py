@@ -24,17 +24,15 @@ import numpy as np
 
 from .record import Crystal, StructureError
 
-__all__ = ["read", "iter_structure_files", "Crystal", "StructureError"]
+__all__ = ["read", "iter_structure_files", "read_cif_bytes", "species", "cell_matrix",
+           "Crystal", "StructureError"]
 
-# Images of one site closer than this (angstrom) are the same atom: rounding
-# of coordinates written with few digits moves images of an atom on a special
-# position apart by a few hundredths of an angstrom at most.
-MERGE_TOL = 0.05
-# Images of one site closer than this (angstrom) cannot both be occupied.  A
-# partly occupied site whose images crowd within this distance is kept split
-# (the images are alternative positions) as long as the occupancies of a
-# crowd add up to at most 1; otherwise the crowd is merged into one atom.
-CROWD_TOL = 0.4
+# Images of one site closer than this (angstrom) are one atom (a site on a
+# special position).  Coordinates written with three or four digits put
+# such images up to a few hundredths of an angstrom apart; distinct images
+# of real sites (split positions of disordered atoms) are 0.3 angstrom or more
+# apart.  Closer images are kept and left to the bond stage to report.
+MERGE_TOL = 0.1
 OCC_TOL = 1e-3
 
 _ELEMENTS = (
@@ -67,13 +65,19 @@ def read(source, *, block: str | None = None) -> list[Crystal]:
     one crystal per data block holding atom sites; ``block`` selects one of
     them by name.  Anything that cannot be read raises :class:`StructureError`.
     """
-    if isinstance(source, Crystal):
-        crystals = [source]
-    elif isinstance(source, (str, os.PathLike)):
-        return _read_path(Path(os.fspath(source)), block)
-    else:
-        crystals = _read_object(source)
-    return _select(crystals, block)
+    try:
+        if isinstance(source, Crystal):
+            crystals = [source]
+        elif isinstance(source, (str, os.PathLike)):
+            return _read_path(os.fspath(source), block)
+        else:
+            crystals = _read_object(source)
+        return _select(crystals, block)
+    except StructureError:
+        raise
+    except Exception as exc:  # a last guard: callers only ever see StructureError
+        raise StructureError(
+            f"cannot read structure ({type(exc).__name__}: {_one_line(exc, 100)})") from exc
 
 
 def iter_structure_files(path) -> Iterator[Path]:
@@ -94,12 +98,10 @@ def iter_structure_files(path) -> Iterator[Path]:
     for dirpath, dirnames, filenames in os.walk(root):
         dirnames[:] = [d for d in dirnames if not d.startswith(".")]
         rel = Path(dirpath).relative_to(root).parts
-        for fname in filenames:
-            if _is_structure_name(fname):
-                found.append((rel, fname))
-    found.sort()
-    for rel, fname in found:
-        yield root.joinpath(*rel, fname)
+        found.extend(rel + (fname,) for fname in filenames if _is_structure_name(fname))
+    found.sort()  # by path components, as a sorted listing of the tree reads
+    for parts in found:
+        yield root.joinpath(*parts)
 
 
 def _is_structure_name(fname: str) -> bool:
@@ -131,33 +133,34 @@ def _one_line(text: str, limit: int = 160) -> str:
 # files
 # --------------------------------------------------------------------------
 
-def _read_path(path: Path, block: str | None) -> list[Crystal]:
-    if not path.exists():
-        raise StructureError(f"no such file: {path}")
-    if path.is_dir():
-        raise StructureError(f"{path} is a directory, not a structure file")
-    lname = path.name.lower()
+def _read_path(path: str, block: str | None) -> list[Crystal]:
+    lname = os.path.basename(path).lower()
     if lname.endswith(_CIF_SUFFIXES):
-        return read_cif_bytes(_read_bytes(path), str(path), block=block)
+        return read_cif_bytes(_read_bytes(path), path, block=block)
     if lname.endswith((".json", ".json.gz")):
-        return _select(_read_pymatgen_json(path), block)
-    if not (path.name.startswith(_VASP_PREFIXES) or lname.endswith(_VASP_SUFFIXES + _XYZ_SUFFIXES)):
-        head = _read_bytes(path)
-        if _looks_like_cif(head):
-            return read_cif_bytes(head, str(path), block=block)
-    return _select(_read_with_ase(path), block)
+        return _select(_read_pymatgen_json(Path(path)), block)
+    if not (os.path.basename(path).startswith(_VASP_PREFIXES)
+            or lname.endswith(_VASP_SUFFIXES + _XYZ_SUFFIXES)):
+        data = _read_bytes(path)
+        if _looks_like_cif(data):
+            return read_cif_bytes(data, path, block=block)
+    return _select(_read_with_ase(Path(path)), block)
 
 
-def _read_bytes(path: Path) -> bytes:
+def _read_bytes(path) -> bytes:
     try:
         with open(path, "rb") as fh:
             data = fh.read()
+    except FileNotFoundError:
+        raise StructureError(f"no such file: {path}") from None
+    except IsADirectoryError:
+        raise StructureError(f"{path} is a directory, not a structure file") from None
     except OSError as exc:
-        raise StructureError(f"cannot open file: {exc.strerror or exc}") from None
-    if path.name.lower().endswith(".gz"):
+        raise StructureError(f"cannot read file: {exc.strerror or exc}") from None
+    if str(path).lower().endswith(".gz"):
         try:
             data = gzip.decompress(data)
-        except (OSError, EOFError, ValueError) as exc:
+        except Exception as exc:  # OSError, EOFError or zlib.error
             raise StructureError(f"corrupt gzip file: {_one_line(exc)}") from None
     return data
 
@@ -206,12 +209,13 @@ def _cif_syntax_error(exc: Exception) -> StructureError:
     msg = _one_line(exc)
     m = _GEMMI_POS.match(msg)
     where = ""
+    low = msg.lower()
     if m:
         where = f" (line {m.group(1)})"
         msg = msg[m.end():]
-    low = msg.lower()
     if "wrong number of values in loop" in low:
         kind = "truncated CIF or broken loop"
+        where = where.replace("(line", "(loop at line")
     elif "unterminated" in low:
         kind = "truncated CIF"
     elif "expected block header" in low:
@@ -224,22 +228,25 @@ def _cif_syntax_error(exc: Exception) -> StructureError:
 
 def read_cif_bytes(data: bytes, source: str = "", *, block: str | None = None) -> list[Crystal]:
     """Read CIF content (bytes or str) into one crystal per block with atoms."""
-    if isinstance(data, str):
-        text = data
-    else:
-        if not data.strip(b" \t\r\n\x0b\x0c\x1a"):
-            raise StructureError("empty file")
-        text = _decode(data)
-    if not text.strip():
+    text = data if isinstance(data, str) else _decode(data)
+    if not text.strip(" \t\r\n\x0b\x0c\x1a"):
         raise StructureError("empty file")
-    try:
-        doc = gemmi.cif.read_string(text)
-    except Exception as exc:  # gemmi raises ValueError/RuntimeError on syntax errors
-        raise _cif_syntax_error(exc) from None
+    repairs = 0
+    while True:
+        try:
+            doc = gemmi.cif.read_string(text)
+            break
+        except Exception as exc:  # gemmi raises ValueError/RuntimeError on syntax errors
+            fixed = _close_quote(text, exc) if repairs < _MAX_REPAIRS else None
+            if fixed is None:
+                raise _cif_syntax_error(exc) from None
+            text = fixed
+            repairs += 1
     if len(doc) == 0:
         raise StructureError("not a CIF file: no data_ block")
 
-    blocks = [b for b in doc if _has_atoms(b)]
+    all_blocks = [doc[i] for i in range(len(doc))]  # (indexing is cheaper than iterating)
+    blocks = [b for b in all_blocks if _has_atoms(b)]
     if block is not None:
         wanted = [b for b in blocks if b.name == block] or [
             b for b in blocks if b.name.lower() == block.lower()]
@@ -266,7 +273,54 @@ def read_cif_bytes(data: bytes, source: str = "", *, block: str | None = None) -
             where = f"data block '{b.name}': " if several else ""
             raise StructureError(
                 f"{where}unreadable CIF block ({type(exc).__name__}: {_one_line(exc, 100)})") from None
+    if repairs:
+        for c in crystals:
+            c.meta["quote_repairs"] = repairs
     return crystals
+
+
+_MAX_REPAIRS = 20
+_UNTERMINATED = re.compile(r"^string:(\d+)\S*\s+unterminated ('|\")string")
+
+
+def _close_quote(text: str, exc: Exception) -> str | None:
+    """Mend a quoted value that never closes on its line.
+
+    CIF 1.1 closes a quote only before white space, so a publication field
+    such as  'K. Schubert',  runs on to the end of the file.  Programs that
+    write such lines mean the quote to close on the same line; closing it at
+    the end of that line keeps the value count of the loop intact.
+    Returns None when the error is of another kind or the line is not found.
+    """
+    m = _UNTERMINATED.match(str(exc))
+    if not m:
+        return None
+    lineno, q = int(m.group(1)), m.group(2)
+    lines = text.split("\n")
+    if not 0 < lineno <= len(lines):
+        return None
+    line = lines[lineno - 1].rstrip()
+    i, n = 0, len(line)
+    while i < n:
+        ch = line[i]
+        if ch in " \t":
+            i += 1
+        elif ch == "#":
+            return None
+        elif ch in "'\"":
+            j = i + 1
+            while j < n and not (line[j] == ch and (j + 1 == n or line[j + 1] in " \t")):
+                j += 1
+            if j >= n:  # this quote never closes
+                if ch != q:
+                    return None
+                lines[lineno - 1] = line + q
+                return "\n".join(lines)
+            i = j + 1
+        else:
+            while i < n and line[i] not in " \t":
+                i += 1
+    return None
 
 
 _ATOM_KEYS = ("_atom_site_fract_x", "_atom_site.fract_x", "_atom_site_label",
@@ -325,10 +379,12 @@ def _num(v: str) -> float:
 
 
 def _floats(values: list[str]) -> np.ndarray:
+    """CIF numbers to an array; '?' and '.' become nan."""
     try:
-        return np.array(values, dtype=np.float64)
+        return np.array(list(map(float, values)), dtype=np.float64)
     except ValueError:
-        return np.array([_num(v) for v in values], dtype=np.float64)
+        table = {v: _num(v) for v in set(values)}
+        return np.array([table[v] for v in values], dtype=np.float64)
 
 
 def _find_value(block, tags) -> str | None:
@@ -343,28 +399,30 @@ def _find_column(block, tags) -> list[str]:
     for tag in tags:
         col = block.find_values(tag)
         if col:
-            return list(col)
+            return [col[i] for i in range(len(col))]  # (iterating a Column is slow)
     return []
 
 
 _CELL_KEYS = ("length_a", "length_b", "length_c", "angle_alpha", "angle_beta", "angle_gamma")
+_CELL_TAGS = tuple(("_cell_" + k, "_cell." + k, k.replace("_", " ")) for k in _CELL_KEYS)
 
 
-def _cif_cell(block) -> tuple[float, ...]:
-    vals = [_find_value(block, ("_cell_" + k, "_cell." + k)) for k in _CELL_KEYS]
-    missing = [k for k, v in zip(_CELL_KEYS[:3], vals[:3]) if v is None or _unquote(v) in ("?", ".")]
-    if missing:
-        raise StructureError(f"no unit cell: {', '.join('_cell_' + k for k in missing)} missing")
+def _cif_cell(block) -> list[float]:
     params = []
-    for k, v in zip(_CELL_KEYS, vals):
-        if v is None:  # a missing angle is 90 degrees by the CIF dictionary
-            params.append(90.0)
-            continue
-        x = _num(v)
-        if math.isnan(x):
-            raise StructureError(f"unit cell {k.replace('_', ' ')} is not a number: {_unquote(v)!r}")
+    for i, (tag, dotted, what) in enumerate(_CELL_TAGS):
+        v = block.find_value(tag)
+        if v is None:
+            v = block.find_value(dotted)
+        x = math.nan if v is None else _num(v)
+        if x != x:  # nan: absent, '?', '.', or not a number
+            if i >= 3 and (v is None or _unquote(v) in ("?", ".")):
+                x = 90.0  # a missing angle is 90 degrees by the CIF dictionary
+            elif v is None or _unquote(v) in ("?", "."):
+                raise StructureError(f"no unit cell: {tag} missing")
+            else:
+                raise StructureError(f"unit cell {what} is not a number: {_unquote(v)!r}")
         params.append(x)
-    return tuple(params)
+    return params
 
 
 def cell_matrix(a: float, b: float, c: float,
@@ -396,31 +454,32 @@ def cell_matrix(a: float, b: float, c: float,
 # ---- elements and charges -------------------------------------------------
 
 _SPECIES_RE = re.compile(r"([A-Za-z]+)(.*)")
-_CHARGE_RES = (re.compile(r"(\d*(?:\.\d+)?)([+-])"),   # Sb3-  Li+  Mn3.5+
-               re.compile(r"([+-])(\d*(?:\.\d+)?)"))   # Fe+3  O-2
+_CHARGE_RE = re.compile(r"(\d*(?:\.\d+)?)([+-])|([+-])(\d*(?:\.\d+)?)|\d*")
 
 
-def _parse_charge(rest: str) -> float:
-    m = _CHARGE_RES[0].fullmatch(rest)
-    if m:
-        mag, sign = m.groups()
-    else:
-        m = _CHARGE_RES[1].fullmatch(rest)
-        if not m:
-            return math.nan
-        sign, mag = m.groups()
+def _parse_charge(rest: str) -> float | None:
+    """'3-' -> -3.0, '+' -> 1.0, '-2' -> -2.0, '' or '1' -> nan; None if no charge form."""
+    m = _CHARGE_RE.fullmatch(rest)
+    if m is None:
+        return None
+    mag1, sign1, sign2, mag2 = m.groups()
+    sign, mag = (sign1, mag1) if sign1 else (sign2, mag2)
+    if not sign:
+        return math.nan  # bare digits: a numbered type such as 'Fe1', no charge
     q = float(mag) if mag else 1.0
     return -q if sign == "-" else q
 
 
 @lru_cache(maxsize=4096)
 def species(symbol: str, strict: bool = True) -> tuple[int, float]:
-    """Atomic number and formal charge of a CIF type symbol or label.
+    """Atomic number and formal charge of a CIF type symbol or site label.
 
-    'Sb3-' -> (51, -3.0); 'Fe' -> (26, nan); 'D' -> (1, nan).  With
-    ``strict`` (type symbols) two lower-case-led letters that are no element
-    ('Xx', 'Va') are rejected; without it (labels such as 'Ow1') the first
-    letter is tried too.  Returns (0, nan) when no element is found.
+    'Sb3-' -> (51, -3.0); 'Fe' -> (26, nan); 'FE2+' -> (26, 2.0); 'D' -> (1, nan).
+    With ``strict`` (type symbols) the symbol must be an element symbol,
+    optionally followed by a charge or a number: 'Xx', 'Va', 'OH', 'H2O' and
+    'NH4' give (0, nan).  Without it (labels such as 'Ow1', 'Fe2a', 'SB1')
+    the leading letters name the element and no charge is read.
+    Returns (0, nan) when no element is found.
     """
     m = _SPECIES_RE.match(symbol.strip())
     if not m:
@@ -429,26 +488,33 @@ def species(symbol: str, strict: bool = True) -> tuple[int, float]:
     z = 0
     if len(letters) >= 2:
         z = _Z.get(letters[0].upper() + letters[1].lower(), 0)
+        if z > 100 and letters[1].isupper():
+            z = 0  # 'NH4', 'NO3': a molecular group, not nihonium or nobelium
         if z:
             rest = letters[2:] + rest
-        elif not strict or letters[1].isupper():
-            z = _Z.get(letters[0].upper(), 0)
-            rest = letters[1:] + rest
-    else:
-        z = _Z.get(letters.upper(), 0)
+        elif strict and letters[1].islower():
+            return 0, math.nan
+    if not z:
+        z = _Z.get(letters[0].upper(), 0)
+        rest = letters[1:] + rest
     if not z:
         return 0, math.nan
-    return z, (_parse_charge(rest) if strict else math.nan)
+    if not strict:
+        return z, math.nan
+    q = _parse_charge(rest)
+    if q is None:
+        return 0, math.nan
+    return z, q
 
 
 # ---- symmetry -------------------------------------------------------------
 
-_SYMOP_TAGS = ("_space_group_symop_operation_xyz", "_space_group_symop.operation_xyz",
-               "_symmetry_equiv_pos_as_xyz", "_symmetry_equiv.pos_as_xyz")
+_SYMOP_TAGS = ("_symmetry_equiv_pos_as_xyz", "_space_group_symop_operation_xyz",
+               "_space_group_symop.operation_xyz", "_symmetry_equiv.pos_as_xyz")
 _MAGN_OP_TAGS = ("_space_group_symop_magn_operation.xyz", "_space_group_symop.magn_operation_xyz")
 _MAGN_CEN_TAGS = ("_space_group_symop_magn_centering.xyz", "_space_group_symop.magn_centering_xyz")
-_HM_TAGS = ("_space_group_name_H-M_alt", "_space_group.name_H-M_alt",
-            "_symmetry_space_group_name_H-M", "_symmetry.space_group_name_H-M",
+_HM_TAGS = ("_symmetry_space_group_name_H-M", "_space_group_name_H-M_alt",
+            "_space_group.name_H-M_alt", "_symmetry.space_group_name_H-M",
             "_space_group_magn.name_BNS", "_space_group_magn.name_bns")
 _HALL_TAGS = ("_space_group_name_Hall", "_space_group.name_Hall",
               "_symmetry_space_group_name_Hall", "_symmetry.space_group_name_Hall")
@@ -499,8 +565,11 @@ def _group(ops: list[gemmi.Op]) -> tuple[np.ndarray, np.ndarray, bool]:
         raise StructureError("symmetry operators do not form a space group")
     ident = _encode(np.eye(3, dtype=np.int64)[None], np.zeros((1, 3), dtype=np.int64))[0]
     order = np.argsort(keys != ident, kind="stable")
-    return (rot[order].astype(np.float64), tran[order].astype(np.float64) / _DEN,
-            len(keys) != n_given)
+    rot = rot[order].astype(np.float64)
+    tran = tran[order].astype(np.float64) / _DEN
+    rot.setflags(write=False)  # cached and shared between calls
+    tran.setflags(write=False)
+    return rot, tran, len(keys) != n_given
 
 
 @lru_cache(maxsize=4096)
@@ -508,6 +577,8 @@ def _group_from_triplets(triplets: tuple[str, ...], centerings: tuple[str, ...] 
     ops = []
     for trip in triplets:
         t = _unquote(trip).strip()
+        if t in ("?", "."):
+            continue
         if t.count(",") == 3:  # magnetic operation with time reversal
             t = t.rsplit(",", 1)[0]
         try:
@@ -563,8 +634,7 @@ def _symmetry(block, alpha: float, gamma: float):
         triplets = _find_column(block, _MAGN_OP_TAGS)
         if triplets:
             centerings = _find_column(block, _MAGN_CEN_TAGS)
-    triplets = [t for t in triplets if _unquote(t).strip() not in ("?", ".")]
-    if triplets:
+    if triplets and not (len(triplets) == 1 and _unquote(triplets[0]).strip() in ("?", ".")):
         rot, tran, completed = _group_from_triplets(tuple(triplets), tuple(centerings))
         return [(rot, tran, completed, "")], hm, "operators"
 
@@ -602,12 +672,17 @@ def _symmetry(block, alpha: float, gamma: float):
 
 # ---- symmetry expansion ---------------------------------------------------
 
-def _expand(frac: np.ndarray, occ: np.ndarray, cell: np.ndarray,
-            rot: np.ndarray, tran: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """All images of the sites in the unit cell: (positions, index of the site)."""
+def _expand(frac: np.ndarray, cell: np.ndarray, rot: np.ndarray, tran: np.ndarray,
+            inside: bool = False) -> tuple[np.ndarray, np.ndarray]:
+    """All images of the sites in the unit cell.
+
+    Returns the positions and, for each, the index of its site (None when
+    the group is the identity alone and positions are the sites themselves).
+    ``inside`` tells that all coordinates are already in [0, 1).
+    """
     n, m = len(frac), len(rot)
-    if m == 1:
-        return _wrap(frac @ rot[0].T + tran[0]), np.arange(n)
+    if m == 1:  # the identity alone (P 1)
+        return (frac if inside else _wrap(frac)), None
     pos = np.einsum("kij,nj->nki", rot, frac) + tran  # (n, m, 3)
     pos -= np.floor(pos)
     metric = cell @ cell.T
@@ -619,32 +694,33 @@ def _expand(frac: np.ndarray, occ: np.ndarray, cell: np.ndarray,
         d = p[:, :, None, :] - p[:, None, :, :]
         d -= np.rint(d)
         d2 = np.einsum("...i,ij,...j->...", d, metric, d)
-        same = ((d2 < MERGE_TOL ** 2) & earlier).any(-1)
-        crowd = ((d2 < CROWD_TOL ** 2) & earlier).any(-1)
-        n_same = m - same.sum(-1)
-        n_crowd = m - crowd.sum(-1)
-        # images crowding closer than CROWD_TOL are one atom unless they are
-        # alternative positions of a partly occupied site
-        merge = occ[s:s + step] * n_same / n_crowd > 1.0 + OCC_TOL
-        keep[s:s + step] = ~np.where(merge[:, None], crowd, same)
+        # an image is dropped when an earlier image of the same site is on it
+        keep[s:s + step] = ~((d2 < MERGE_TOL ** 2) & earlier).any(-1)
     site, image = np.nonzero(keep)
     return _wrap(pos[site, image]), site
 
 
 def _wrap(frac: np.ndarray) -> np.ndarray:
-    frac = frac - np.floor(frac)
-    frac[frac >= 1.0] = 0.0
+    """Fractional coordinates into [0, 1), C-contiguous."""
+    frac = np.subtract(frac, np.floor(frac), order="C")
+    if not frac.max() < 1.0:  # -1e-17 wraps to 1.0 in floating point
+        frac[frac >= 1.0] = 0.0
     return frac
 
 
 def _min_distance(frac: np.ndarray, cell: np.ndarray) -> float:
-    if len(frac) < 2:
-        return math.inf
-    d = frac[:, None, :] - frac[None, :, :]
-    d -= np.rint(d)
-    d2 = np.einsum("...i,ij,...j->...", d, cell @ cell.T, d)
-    d2[np.diag_indices(len(frac))] = np.inf
-    return float(np.sqrt(d2.min()))
+    """Shortest distance between two atoms (nearest images by rounding)."""
+    n = len(frac)
+    metric = cell @ cell.T
+    best = math.inf
+    for s in range(0, n, 256):
+        d = frac[s:s + 256, None, :] - frac[None, :, :]
+        d -= np.rint(d)
+        d2 = np.einsum("...i,ij,...j->...", d, metric, d)
+        rows = np.arange(s, min(s + 256, n))
+        d2[rows - s, rows] = np.inf
+        best = min(best, float(d2.min()))
+    return math.sqrt(best)
 
 
 # ---- one block ------------------------------------------------------------
@@ -668,65 +744,44 @@ def _crystal_from_block(block, source: str) -> Crystal:
         raise StructureError("no fractional atom coordinates (_atom_site_fract_x/y/z)")
     labels = column("_atom_site_label")
     types = column("_atom_site_type_symbol")
-    if labels is None and types is None:
-        raise StructureError("atom sites have neither labels nor type symbols")
-    labels = [_unquote(v) for v in (labels if labels is not None else types)]
+    occ_raw = column("_atom_site_occupancy")
+    if labels is None:
+        if types is None:
+            raise StructureError("atom sites have neither labels nor type symbols")
+        labels = types
 
     flags = column("_atom_site_calc_flag")
-    rows = None
-    if flags is not None:  # dummy atoms are not part of the structure
+    if flags is not None and any(_unquote(f).lower() == "dum" for f in flags):
+        # dummy atoms are not part of the structure
         rows = [i for i, f in enumerate(flags) if _unquote(f).lower() != "dum"]
-        if len(rows) == nrow:
-            rows = None
-        else:
-            def pick(seq):
-                return None if seq is None else [seq[i] for i in rows]
-            xs, ys, zs, types = pick(xs), pick(ys), pick(zs), pick(types)
-            labels = pick(labels)
-            nrow = len(rows)
-            if nrow == 0:
-                raise StructureError("only dummy atom sites")
+        if not rows:
+            raise StructureError("only dummy atom sites")
 
-    frac = _floats(xs + ys + zs).reshape(3, nrow).T
-    if not np.isfinite(frac).all():
-        bad = int(np.nonzero(~np.isfinite(frac).all(1))[0][0])
+        def pick(seq):
+            return None if seq is None else [seq[i] for i in rows]
+        xs, ys, zs, labels, types, occ_raw = map(pick, (xs, ys, zs, labels, types, occ_raw))
+        nrow = len(rows)
+
+    joined = "".join(labels)
+    if "'" in joined or '"' in joined or ";" in joined:
+        labels = [_unquote(v) for v in labels]
+
+    coords = [""] * (3 * nrow)  # x, y, z of each site in turn
+    coords[0::3], coords[1::3], coords[2::3] = xs, ys, zs
+    try:
+        vals = list(map(float, coords))
+        finite = math.isfinite(math.fsum(vals))
+    except (ValueError, OverflowError):
+        vals = [_num(v) for v in coords]
+        finite = all(map(math.isfinite, vals))
+    if not finite:
+        bad = next(i for i, v in enumerate(vals) if not math.isfinite(v)) // 3
         raise StructureError(f"missing or unreadable coordinates for site '{labels[bad]}'")
+    inside = min(vals) >= 0.0 and max(vals) < 1.0
+    frac = np.array(vals).reshape(nrow, 3)
 
-    occ_raw = column("_atom_site_occupancy")
-    if occ_raw is None:
-        occ = np.ones(nrow)
-    else:
-        if rows is not None:
-            occ_raw = [occ_raw[i] for i in rows]
-        occ = _floats(occ_raw)
-        occ[np.isnan(occ)] = 1.0  # '?' or '.': not given
-        bad = np.nonzero((occ <= 0.0) | (occ > 1.0 + OCC_TOL) | ~np.isfinite(occ))[0]
-        if len(bad):
-            i = int(bad[0])
-            what = "is not positive" if occ[i] <= 0 else "exceeds 1"
-            raise StructureError(f"occupancy {occ[i]:g} of site '{labels[i]}' {what}")
-        np.minimum(occ, 1.0, out=occ)
-
-    numbers = np.empty(nrow, dtype=np.int64)
-    charges = np.empty(nrow, dtype=np.float64)
-    oxidation = None
-    for i in range(nrow):
-        sym = _unquote(types[i]) if types is not None else ""
-        if sym and sym not in ("?", "."):
-            z, q = species(sym)
-            if not z:
-                raise StructureError(f"unknown element symbol '{sym}' (site '{labels[i]}')")
-            if q != q:  # no charge in the symbol: try the _atom_type loop
-                if oxidation is None:
-                    oxidation = _oxidation_numbers(block)
-                q = oxidation.get(sym, q)
-        else:
-            z, q = species(labels[i], False)
-            if not z:
-                raise StructureError(
-                    f"cannot tell the element of site '{labels[i]}' (no _atom_site_type_symbol)")
-        numbers[i] = z
-        charges[i] = q
+    occ = _occupancies(occ_raw, nrow, labels)
+    numbers, charges = _elements(block, types, labels)
 
     a, b, c, alpha, beta, gamma = _cif_cell(block)
     cell = cell_matrix(a, b, c, alpha, beta, gamma)
@@ -734,7 +789,7 @@ def _crystal_from_block(block, source: str) -> Crystal:
     candidates, hm, how = _symmetry(block, alpha, gamma)
     best = None
     for rot, tran, completed, setting in candidates:
-        pos, site = _expand(frac, occ, cell, rot, tran)
+        pos, site = _expand(frac, cell, rot, tran, inside)
         if best is not None:
             # only a space-group name with two origin choices: take the
             # setting that puts more atoms on special positions, then the one
@@ -746,25 +801,90 @@ def _crystal_from_block(block, source: str) -> Crystal:
         best = (pos, site, setting, completed, len(rot))
     pos, site, setting, completed, nops = best
 
+    labels = np.array(labels)
+    if site is not None:
+        numbers, occ, labels, charges = numbers[site], occ[site], labels[site], charges[site]
     meta = {"format": "cif", "spacegroup": hm, "symmetry": how, "nsymops": nops}
     if setting:
         meta["setting"] = setting
     if completed:
         meta["symmetry_completed"] = True
-    return Crystal(
-        cell=cell,
-        frac=pos,
-        numbers=numbers[site],
-        occupancy=occ[site],
-        labels=np.array(labels)[site],
-        charges=charges[site],
-        name=block.name,
-        source=source,
-        meta=meta,
-    )
+    return Crystal(cell=cell, frac=pos, numbers=numbers, occupancy=occ, labels=labels,
+                   charges=charges, name=block.name, source=source, meta=meta)
+
+
+def _occupancies(occ_raw: list[str] | None, nrow: int, labels: list[str]) -> np.ndarray:
+    if occ_raw is None:
+        return np.ones(nrow)
+    first = occ_raw[0]
+    if occ_raw.count(first) == nrow:  # one value for all sites, usually 1
+        v = _num(first)
+        if math.isnan(v):
+            v = 1.0
+        if not 0.0 < v <= 1.0 + OCC_TOL:
+            _check_occupancy(np.array([v]), labels[:1])
+        return np.full(nrow, min(v, 1.0))
+    occ = _floats(occ_raw)
+    occ[np.isnan(occ)] = 1.0  # '?' or '.': not given
+    if not (occ.min() > 0.0 and occ.max() <= 1.0 + OCC_TOL):
+        _check_occupancy(occ, labels)
+    return np.minimum(occ, 1.0, out=occ)
+
+
+@lru_cache(maxsize=4096)
+def _type_species(raw: str) -> tuple[int, float, str]:
+    sym = _unquote(raw).strip()
+    if sym in ("", "?", "."):
+        return 0, math.nan, ""
+    z, q = species(sym)
+    return z, q, sym
+
+
+def _elements(block, types: list[str] | None, labels: list[str]) -> tuple[np.ndarray, np.ndarray]:
+    """Atomic numbers and formal charges of the asymmetric-unit sites."""
+    n = len(labels)
+    if types is None:
+        znum = {}
+        for label in set(labels):
+            z, _ = species(label, False)
+            if not z:
+                raise StructureError(
+                    f"cannot tell the element of site '{label}' (no _atom_site_type_symbol)")
+            znum[label] = z
+        return np.array([znum[v] for v in labels], dtype=np.int64), np.full(n, np.nan)
+
+    table = {}
+    oxidation = None
+    for t in set(types):
+        z, q, sym = _type_species(t)
+        if z and q != q:  # no charge in the symbol: perhaps in the _atom_type loop
+            if oxidation is None:
+                oxidation = _oxidation_numbers(block)
+            q = oxidation.get(sym, q)
+        table[t] = (z, q, sym)
+    if not all(v[0] for v in table.values()):
+        rows = []
+        for t, label in zip(types, labels):
+            z, q, sym = table[t]
+            if not z:
+                if sym:
+                    raise StructureError(f"unknown element symbol '{sym}' (site '{label}')")
+                z, q = species(label, False)  # type symbol '?': go by the label
+                if not z:
+                    raise StructureError(f"cannot tell the element of site '{label}'")
+            rows.append((z, q, sym))
+        table = dict(enumerate(rows))
+        types = range(n)
+    numbers = np.array([table[t][0] for t in types], dtype=np.int64)
+    if all(v[1] != v[1] for v in table.values()):
+        return numbers, np.full(n, np.nan)
+    return numbers, np.array([table[t][1] for t in types], dtype=np.float64)
 
 
 def _oxidation_numbers(block) -> dict[str, float]:
+    if not (block.find_values("_atom_type_oxidation_number")
+            or block.find_values("_atom_type.oxidation_number")):
+        return {}
     symbols = _find_column(block, ("_atom_type_symbol", "_atom_type.symbol"))
     numbers = _find_column(block, ("_atom_type_oxidation_number", "_atom_type.oxidation_number"))
     if not symbols or len(symbols) != len(numbers):
@@ -874,9 +994,10 @@ def _from_ase(atoms, source: str, name: str, fmt: str = "ase") -> Crystal:
     labels = atoms.arrays.get("labels") if hasattr(atoms, "arrays") else None
     if labels is None or len(labels) != n:
         labels = np.array([""] * n)
+    cell, frac = _right_handed(cell, frac)
     return Crystal(
         cell=cell,
-        frac=_wrap(frac),
+        frac=frac,
         numbers=numbers,
         occupancy=np.minimum(occ, 1.0),
         labels=np.asarray(labels, dtype=str),
@@ -885,6 +1006,17 @@ def _from_ase(atoms, source: str, name: str, fmt: str = "ase") -> Crystal:
         source=source,
         meta={"format": fmt, "spacegroup": ""},
     )
+
+
+def _right_handed(cell: np.ndarray, frac: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Cell and wrapped coordinates with a right-handed cell (det > 0).
+
+    A left-handed cell is turned around by negating all three vectors and all
+    coordinates, which leaves every atom where it was.
+    """
+    if np.linalg.det(cell) < 0:
+        cell, frac = -cell, -frac
+    return cell, _wrap(frac)
 
 
 def _check_occupancy(occ: np.ndarray, labels) -> None:
@@ -939,9 +1071,8 @@ def _from_pymatgen(s, source: str, name: str) -> Crystal:
         rows = []
         for site in s:
             label = getattr(site, "label", None) or ""
-            species_str = site.species_string
-            if label == species_str and len(site.species) > 1:
-                label = ""
+            if not site.is_ordered and label == site.species_string:
+                label = ""  # pymatgen's stand-in label such as 'Ga:0.500, Ge:0.500'
             for sp, o in site.species.items():
                 z = int(getattr(sp, "Z", 0) or 0)
                 if z <= 0:
@@ -963,9 +1094,10 @@ def _from_pymatgen(s, source: str, name: str) -> Crystal:
     _check_occupancy(occ, labels)
     if not name:
         name = s.composition.reduced_formula
+    cell, frac = _right_handed(cell, frac)
     return Crystal(
         cell=cell,
-        frac=_wrap(frac),
+        frac=frac,
         numbers=np.array([r[1] for r in rows], dtype=np.int64),
         occupancy=np.minimum(occ, 1.0),
         labels=labels,
