@@ -1,0 +1,290 @@
+"""Throughput of `bondcheck scan` on the shared corpus, against a plain
+pymatgen script doing the naive version of the job on the same files.
+
+    python benchmarks/bench_scan.py                    # 1000 corpus files
+    python benchmarks/bench_scan.py --limit 0          # every corpus file
+    python benchmarks/bench_scan.py --flat 100000      # + memory on 100,000 entries
+
+Each measurement runs in a fresh process (so imports, caches and memory do not
+leak between them) and reports files/s and the peak resident memory of the
+scan's processes (main, server and workers, sampled with psutil every 0.1 s).
+
+Measurements
+  loop      read() + check_crystal() in a plain loop: the per-structure cost
+  inline    the scan machinery in one process (enumerate, read bytes, hash,
+            check, write rows): inline - loop is the scan overhead per entry
+  jobs=1    one worker process; jobs=2: two worker processes
+  store     jobs=2 writing a fresh results store; rerun: the same again, all
+            answered from the store
+  pymatgen  the naive script: CifParser, covalent-radius cutoff (sum of
+            covalent radii + 15 %), the most electronegative element as the
+            anion, count anion-anion bonds per anion
+
+Skips (exit status 0, with a message) when ../shared/corpus is absent.
+"""
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import subprocess
+import sys
+import tempfile
+import threading
+import time
+from pathlib import Path
+
+CORPUS = Path(__file__).resolve().parents[1] / ".." / "shared" / "corpus"
+HERE = Path(__file__).resolve()
+
+
+# --------------------------------------------------------------------------
+# memory sampling
+
+
+class PeakMemory:
+    """Peak RSS of this process and of all its descendants, sampled."""
+
+    def __init__(self, every: float = 0.1):
+        import psutil
+
+        self.proc = psutil.Process()
+        self.every = every
+        self.peak_self = 0
+        self.peak_total = 0
+        self._stop = threading.Event()
+        self._t = threading.Thread(target=self._run, daemon=True)
+        self._t.start()
+
+    def sample(self) -> None:
+        import psutil
+
+        try:
+            me = self.proc.memory_info().rss
+            total = me
+            for c in self.proc.children(recursive=True):
+                try:
+                    total += c.memory_info().rss
+                except psutil.Error:
+                    pass
+        except psutil.Error:
+            return
+        self.peak_self = max(self.peak_self, me)
+        self.peak_total = max(self.peak_total, total)
+
+    def _run(self) -> None:
+        while not self._stop.wait(self.every):
+            self.sample()
+
+    def stop(self) -> dict:
+        self._stop.set()
+        self._t.join()
+        self.sample()
+        return {"peak_rss_main_mb": round(self.peak_self / 2**20, 1),
+                "peak_rss_all_mb": round(self.peak_total / 2**20, 1)}
+
+
+# --------------------------------------------------------------------------
+# one measurement (in its own process)
+
+
+def naive_pymatgen(files: list[str]) -> tuple[int, int]:
+    """The plain script a curator might write: returns (structures, errors)."""
+    import warnings
+
+    from pymatgen.analysis.molecule_structure_comparator import CovalentRadius
+    from pymatgen.io.cif import CifParser
+
+    warnings.simplefilter("ignore")
+    radius = CovalentRadius.radius
+    done = errors = 0
+    for f in files:
+        try:
+            s = CifParser(f).parse_structures(primitive=False)[0]
+            els = [sp.symbol for sp in s.composition.elements]
+            anion = max(els, key=lambda e: (s.composition.elements[els.index(e)].X, e))
+            rmax = 2 * max(radius.get(e, 1.5) for e in els) * 1.15
+            aa = 0
+            n_anion = 0
+            for i, nbrs in enumerate(s.get_all_neighbors(rmax)):
+                ei = s[i].specie.symbol
+                if ei != anion:
+                    continue
+                n_anion += 1
+                for nb in nbrs:
+                    ej = nb.specie.symbol
+                    if ej == anion and nb.nn_distance <= 1.15 * (radius.get(ei, 1.5) + radius.get(ej, 1.5)):
+                        aa += 1
+            _ = aa / max(n_anion, 1)
+            done += 1
+        except Exception:
+            errors += 1
+    return done, errors
+
+
+def loop(files: list[str]) -> tuple[int, int]:
+    from bondcheck.api import Options, check_crystal
+    from bondcheck.read import read
+    from bondcheck.record import StructureError
+
+    opts = Options()
+    done = errors = 0
+    for f in files:
+        try:
+            for c in read(f):
+                check_crystal(c, opts)
+                done += 1
+        except StructureError:
+            errors += 1
+    return done, errors
+
+
+def one(name: str, files: list[str], workdir: str) -> dict:
+    mem = PeakMemory()
+    cpu0 = time.process_time()
+    t0 = time.perf_counter()
+    extra: dict = {}
+    if name == "loop":
+        done, errors = loop(files)
+    elif name == "pymatgen":
+        done, errors = naive_pymatgen(files)
+    else:
+        from bondcheck.scan import scan
+
+        lst = os.path.join(workdir, "files.txt")
+        store = None
+        jobs = {"inline": 1, "jobs=1": 1}.get(name, 2)
+        executor = "inline" if name == "inline" else "process"
+        if name in ("store", "rerun"):
+            store = os.path.join(workdir, "store.sqlite")
+        from bondcheck.sources import read_list
+
+        out = [os.path.join(workdir, f"{name}.jsonl")]
+        tally = scan(list(read_list(lst)), out=out, store=store, jobs=jobs, executor=executor, progress=False)
+        done, errors = tally.rows, tally.status.get("error", 0) + tally.status.get("timeout", 0)
+        extra = {"checked": tally.checked, "reused": tally.reused}
+    wall = time.perf_counter() - t0
+    cpu = time.process_time() - cpu0
+    res = {"name": name, "files": len(files), "structures": done, "errors": errors,
+           "wall_s": round(wall, 3), "files_per_s": round(len(files) / wall, 1),
+           "main_cpu_ms_per_file": round(1000 * cpu / len(files), 3), **extra}
+    res.update(mem.stop())
+    return res
+
+
+def flat(n: int, files: list[str], workdir: str) -> dict:
+    """Scan a tar.gz of n distinct entries (corpus files with a numbered
+    comment appended), sampling the main process's memory along the way."""
+    import io
+    import tarfile
+
+    import psutil
+
+    from bondcheck.scan import Scanner
+
+    tpath = os.path.join(workdir, "many.tar.gz")
+    datas = [Path(f).read_bytes() for f in files]
+    with tarfile.open(tpath, "w:gz", compresslevel=1) as tf:
+        for i in range(n):
+            data = datas[i % len(datas)] + f"\n# copy {i}\n".encode()
+            info = tarfile.TarInfo(f"lot-{i // 1000:03d}/entry-{i:06d}.cif")
+            info.size = len(data)
+            tf.addfile(info, io.BytesIO(data))
+    proc = psutil.Process()
+    mem = PeakMemory(every=0.5)
+    samples = []
+    t0 = time.perf_counter()
+    sc = Scanner([tpath], store=os.path.join(workdir, "flat.sqlite"), jobs=2)
+    k = 0
+    for _ in sc.rows():
+        k += 1
+        if k % max(1, n // 10) == 0:
+            samples.append((k, round(proc.memory_info().rss / 2**20, 1)))
+    wall = time.perf_counter() - t0
+    return {"name": f"flat {n}", "entries": sc.entries, "wall_s": round(wall, 1),
+            "files_per_s": round(sc.entries / wall, 1), "main_rss_mb_at": samples, **mem.stop()}
+
+
+# --------------------------------------------------------------------------
+# driver
+
+
+def pick(limit: int) -> list[str]:
+    files = sorted(str(p) for p in CORPUS.rglob("*.cif"))
+    if limit and len(files) > limit:
+        step = len(files) / limit
+        files = [files[int(i * step)] for i in range(limit)]
+    return files
+
+
+def run_one(name: str, workdir: str) -> dict:
+    env = dict(os.environ, CI="true")
+    res = subprocess.run([sys.executable, str(HERE), "--one", name, "--workdir", workdir],
+                         capture_output=True, text=True, env=env)
+    if res.returncode != 0:
+        raise SystemExit(f"{name} failed:\n{res.stderr}")
+    return json.loads(res.stdout.strip().splitlines()[-1])
+
+
+def main() -> int:
+    ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    ap.add_argument("--limit", type=int, default=1000, help="corpus files to use, spread evenly (0: all)")
+    ap.add_argument("--flat", type=int, default=0, metavar="N", help="also scan N entries to watch memory")
+    ap.add_argument("--skip-pymatgen", action="store_true")
+    ap.add_argument("--one", help=argparse.SUPPRESS)
+    ap.add_argument("--workdir", help=argparse.SUPPRESS)
+    args = ap.parse_args()
+
+    if args.one:
+        files = Path(args.workdir, "files.txt").read_text().split("\n")
+        files = [f for f in files if f]
+        if args.one.startswith("flat"):
+            res = flat(int(args.one.split()[1]), files, args.workdir)
+        else:
+            res = one(args.one, files, args.workdir)
+        print(json.dumps(res))
+        return 0
+
+    if not CORPUS.is_dir():
+        print(f"bench_scan: corpus not found at {CORPUS}; nothing to measure")
+        return 0
+    files = pick(args.limit)
+    import platform
+
+    print(f"# {len(files)} CIF files from {CORPUS.resolve()}; {os.cpu_count()} cores; "
+          f"Python {platform.python_version()}")
+    with tempfile.TemporaryDirectory(prefix="bench-scan-") as wd:
+        Path(wd, "files.txt").write_text("\n".join(files) + "\n")
+        names = ["loop", "inline", "jobs=1", "jobs=2", "store", "rerun"]
+        if not args.skip_pymatgen:
+            names.append("pymatgen")
+        results = {}
+        for name in names:
+            r = results[name] = run_one(name, wd)
+            print(json.dumps(r), flush=True)
+        if args.flat:
+            print(json.dumps(run_one(f"flat {args.flat}", wd)), flush=True)
+
+    lp, il = results["loop"], results["inline"]
+    j1, j2 = results["jobs=1"], results["jobs=2"]
+    print()
+    print("| measurement | files/s | peak RSS, all processes (MB) |")
+    print("|---|---:|---:|")
+    for name in names:
+        r = results[name]
+        print(f"| {name} | {r['files_per_s']:.1f} | {r['peak_rss_all_mb']:.0f} |")
+    over = 1000 * (il["wall_s"] - lp["wall_s"]) / len(files)
+    print()
+    print(f"scan overhead per entry (inline - loop): {over:.2f} ms; main-process CPU per entry with 2 jobs: "
+          f"{j2['main_cpu_ms_per_file']:.2f} ms")
+    print(f"scaling 1 -> 2 jobs: {j2['files_per_s'] / j1['files_per_s']:.2f}x")
+    print(f"per core (jobs=2 / 2): {j2['files_per_s'] / 2:.1f} files/s")
+    if "pymatgen" in results:
+        print(f"bondcheck scan (2 jobs) / pymatgen script (1 process): "
+              f"{j2['files_per_s'] / results['pymatgen']['files_per_s']:.2f}x; "
+              f"per process (jobs=1 / pymatgen): {j1['files_per_s'] / results['pymatgen']['files_per_s']:.2f}x")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

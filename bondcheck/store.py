@@ -1,0 +1,184 @@
+"""The results store: a SQLite file that remembers finished work.
+
+Work is keyed by the content hash of an entry and the settings it was checked
+with (``Options.key()`` plus the bondcheck version), so a rerun skips what is
+done, a renamed or moved file is not checked again, and a scan that was
+interrupted (Ctrl-C, kill -9, a power cut) resumes where it stopped: rows are
+committed in small transactions in write-ahead-log mode, and whatever was not
+committed is simply checked again.  The primary keys make a second copy of a
+row impossible.
+
+Tables
+  results(hash, okey, status, timeout, seconds, rows)   rows: zlib-compressed JSON
+  entries(entry, okey, hash)                            which entry holds which content
+  runs(id, okey, started, finished, ...)                one line per scan
+"""
+from __future__ import annotations
+
+import json
+import os
+import sqlite3
+import time
+import zlib
+from typing import Iterator
+
+SCHEMA = """
+CREATE TABLE IF NOT EXISTS results (
+    hash TEXT NOT NULL,
+    okey TEXT NOT NULL,
+    status TEXT NOT NULL,
+    timeout REAL,
+    seconds REAL NOT NULL,
+    rows BLOB NOT NULL,
+    PRIMARY KEY (hash, okey)
+) WITHOUT ROWID;
+CREATE TABLE IF NOT EXISTS entries (
+    entry TEXT NOT NULL,
+    okey TEXT NOT NULL,
+    hash TEXT NOT NULL,
+    PRIMARY KEY (entry, okey)
+) WITHOUT ROWID;
+CREATE TABLE IF NOT EXISTS runs (
+    id INTEGER PRIMARY KEY,
+    okey TEXT NOT NULL,
+    inputs TEXT NOT NULL,
+    started REAL NOT NULL,
+    finished REAL,
+    entries INTEGER,
+    checked INTEGER,
+    reused INTEGER,
+    wall REAL,
+    jobs INTEGER,
+    interrupted INTEGER
+);
+"""
+
+# Keys of a stored row that depend on the entry rather than its content.
+_ENTRY_KEYS = ("entry", "hash")
+
+
+class Store:
+    """Finished work, keyed by (content hash, settings key)."""
+
+    def __init__(self, path: str, *, commit_every: float = 0.5):
+        self.path = os.fspath(path)
+        d = os.path.dirname(os.path.abspath(self.path))
+        os.makedirs(d, exist_ok=True)
+        self.con = sqlite3.connect(self.path, isolation_level=None, check_same_thread=False)
+        self.con.execute("PRAGMA journal_mode=WAL")
+        self.con.execute("PRAGMA synchronous=NORMAL")
+        self.con.executescript(SCHEMA)
+        self.con.execute("BEGIN")
+        self._last_commit = time.monotonic()
+        self._pending = 0
+        self.commit_every = commit_every
+
+    # -- work ---------------------------------------------------------------
+
+    def get(self, digest: str, okey: str) -> tuple[str, float | None, list[dict]] | None:
+        """(status, timeout, rows) stored for this content and settings, or None."""
+        r = self.con.execute(
+            "SELECT status, timeout, rows FROM results WHERE hash=? AND okey=?", (digest, okey)).fetchone()
+        if r is None:
+            return None
+        return r[0], r[1], json.loads(zlib.decompress(r[2]))
+
+    def put(self, digest: str, okey: str, entry: str, status: str, rows: list[dict],
+            timeout: float | None = None) -> None:
+        """Remember the rows checked for one entry.  ``rows`` are in the
+        content-only form (see :func:`generic`), so that other copies of the
+        same content reuse them."""
+        blob = zlib.compress(json.dumps(rows, separators=(",", ":"), allow_nan=False).encode(), 1)
+        seconds = float(rows[0].get("entry_seconds") or 0.0) if rows else 0.0
+        self.con.execute(
+            "INSERT OR REPLACE INTO results VALUES (?, ?, ?, ?, ?, ?)",
+            (digest, okey, status, timeout, seconds, blob))
+        self.con.execute("INSERT OR REPLACE INTO entries VALUES (?, ?, ?)", (entry, okey, digest))
+        self._tick()
+
+    def link(self, digest: str, okey: str, entry: str) -> None:
+        """Record that an entry holds content whose result is already stored."""
+        self.con.execute("INSERT OR REPLACE INTO entries VALUES (?, ?, ?)", (entry, okey, digest))
+        self._tick()
+
+    def _tick(self) -> None:
+        self._pending += 1
+        now = time.monotonic()
+        if now - self._last_commit >= self.commit_every:
+            self.commit()
+
+    def commit(self) -> None:
+        if self.con.in_transaction:
+            self.con.execute("COMMIT")
+        self.con.execute("BEGIN")
+        self._pending = 0
+        self._last_commit = time.monotonic()
+
+    # -- runs ---------------------------------------------------------------
+
+    def start_run(self, okey: str, inputs: list[str], jobs: int) -> int:
+        cur = self.con.execute(
+            "INSERT INTO runs (okey, inputs, started, jobs, interrupted) VALUES (?, ?, ?, ?, 1)",
+            (okey, json.dumps(inputs), time.time(), jobs))
+        self.commit()
+        return int(cur.lastrowid)
+
+    def finish_run(self, run: int, *, entries: int, checked: int, reused: int, wall: float,
+                   interrupted: bool) -> None:
+        self.con.execute(
+            "UPDATE runs SET finished=?, entries=?, checked=?, reused=?, wall=?, interrupted=? WHERE id=?",
+            (time.time(), entries, checked, reused, wall, int(interrupted), run))
+        self.commit()
+
+    def last_run(self) -> dict | None:
+        cur = self.con.execute("SELECT * FROM runs ORDER BY id DESC LIMIT 1")
+        r = cur.fetchone()
+        if r is None:
+            return None
+        return dict(zip([d[0] for d in cur.description], r))
+
+    # -- reading back -------------------------------------------------------
+
+    def okeys(self) -> list[str]:
+        return [r[0] for r in self.con.execute("SELECT DISTINCT okey FROM entries")]
+
+    def iter_rows(self, okey: str | None = None) -> Iterator[dict]:
+        """Every stored row for one settings key (the last run's by default),
+        in entry order."""
+        if okey is None:
+            run = self.last_run()
+            keys = self.okeys()
+            okey = run["okey"] if run else (keys[0] if keys else "")
+        cur = self.con.execute(
+            "SELECT e.entry, e.hash, r.rows FROM entries e JOIN results r "
+            "ON r.hash = e.hash AND r.okey = e.okey WHERE e.okey=? ORDER BY e.entry", (okey,))
+        for entry, digest, blob in cur:
+            yield from specific(json.loads(zlib.decompress(blob)), entry, digest)
+
+    def close(self) -> None:
+        try:
+            if self.con.in_transaction:
+                self.con.execute("COMMIT")
+        finally:
+            self.con.close()
+
+
+def generic(row: dict, entry: str) -> dict:
+    """A row without what belongs to its entry: the id and hash are dropped
+    and the path keeps only what follows the entry id ('#block')."""
+    g = {k: v for k, v in row.items() if k not in _ENTRY_KEYS}
+    path = g.get("path") or ""
+    g["path"] = path[len(entry):] if path.startswith(entry) else path
+    return g
+
+
+def specific(rows: list[dict], entry: str, digest: str) -> list[dict]:
+    """Stored rows made into the rows of one entry."""
+    out = []
+    for g in rows:
+        r = {"entry": entry}
+        r.update(g)
+        r["path"] = entry + (g.get("path") or "")
+        r["hash"] = digest
+        out.append(r)
+    return out
