@@ -120,7 +120,12 @@ def render_text(report, verbose: bool = False) -> str:
             lines.append(f"{tag:5s} {c.file}: {c.error}")
         elif c.failed:
             lines.append(f"FAIL  {c.file} [{c.structure}]")
-        elif c.items or verbose:
+        elif c.items and not verbose:
+            why = sorted({f"accepted: {i.reason}" if i.state == "accepted" else "in the baseline" if i.state == "baseline"
+                          else "below fail-on" for i in c.items})
+            lines.append(f"ok    {c.file} [{c.structure}] {', '.join(i.slug for i in c.items)} ({'; '.join(why)})")
+            continue
+        elif verbose:
             lines.append(f"ok    {c.file} [{c.structure}]")
         else:
             continue
