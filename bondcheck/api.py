@@ -59,6 +59,8 @@ class Result:
     electrons_per_formula: float | None = None
     anions_per_formula: float | None = None
     sites: list[dict] = field(default_factory=list)
+    polyanion: str = ""
+    components: list[dict] = field(default_factory=list)
     findings: list = field(default_factory=list)
     seconds: float = 0.0
 
@@ -110,7 +112,9 @@ def check_crystal(crystal: Crystal, options: Options | None = None) -> Result:
         c = count(crystal, contacts, sites, options.anions, options.valence)
         coord, nearest, last, first_out, fragile = per_atom(contacts, crystal.natoms, crystal.occupancy)
         fragile_labels = _fragile_sites(crystal, contacts, sites, c, options, fragile)
-        verdict, found = diagnose(crystal, contacts, sites, c, fragile_labels)
+        verdict, found, components = diagnose(
+            crystal, contacts, sites, c, fragile_labels, options.anions, options.valence, options.criterion
+        )
     except StructureError as exc:
         res.status, res.error = "error", str(exc)
         res.seconds = time.perf_counter() - t0
@@ -119,7 +123,14 @@ def check_crystal(crystal: Crystal, options: Options | None = None) -> Result:
     res.spacegroup = f"{sites.spacegroup} ({sites.spacegroup_number})"
     res.verdict = verdict
     res.findings = found
-    res.causes = [f.slug for f in found if f.explains or verdict != "consistent" and f.severity != "info" or f.slug in ("metallic", "nothing-to-count")]
+    res.components = [comp.to_dict() for comp in components]
+    if components:
+        from .motifs import describe
+
+        res.polyanion = describe(components)
+    # Causes: what explains the verdict, most likely first (findings that only
+    # add context, such as partial-occupancy or lone-pair-activity, are left out).
+    res.causes = [f.slug for f in found if f.explains or f.rank > 0 or f.slug in ("metallic", "nothing-to-count")]
     res.causes = list(dict.fromkeys(res.causes))
     if c is not None:
         res.cations, res.anions, res.partition = c.cations, c.anions, c.reason

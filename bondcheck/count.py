@@ -53,6 +53,18 @@ SPLIT_STEP = 0.6
 METAL_ANION_EN = 2.2
 
 
+def _capable_by_z() -> np.ndarray:
+    global _CAPABLE
+    if _CAPABLE is None:
+        _CAPABLE = np.zeros(128, dtype=bool)
+        for sym, row in elements.table().items():
+            _CAPABLE[row["Z"]] = elements.can_be_anion(sym)
+    return _CAPABLE
+
+
+_CAPABLE = None
+
+
 def target(sym: str) -> int:
     return 2 if sym in ("H", "He") else 8
 
@@ -165,8 +177,13 @@ def count(
     for c in tried:
         if c.anions == an:
             c.reason = why
-            return c
-    return ctx.evaluate(an, why)
+            break
+    else:
+        c = ctx.evaluate(an, why)
+    if not c.valid:
+        # A closure that needs an implausible split does not count as closing.
+        c.closure = Closure(False)
+    return c
 
 
 class _Context:
@@ -194,6 +211,7 @@ class _Context:
         self.bw = c.weight[c.bonded]
         self.bd = c.d[c.bonded]
         self.ep_atom = elements.electropositive_by_z()[z]
+        self.capable_atom = _capable_by_z()[z]
         # Groups: one per (site, element).
         key = sites.site.astype(np.int64) * 128 + z
         uniq, self.group_of = np.unique(key, return_inverse=True)
@@ -220,6 +238,18 @@ class _Context:
                             anions.append(sy)
                             an_z.add(y)
                             changed = True
+        # Anion-capable elements with no bond to any anion are isolated anions
+        # (Cl- beside water molecules), not cations.
+        bonded_to_anion = set()
+        for a, b in zip(z[self.bi], z[self.bj]):
+            if a in an_z:
+                bonded_to_anion.add(int(b))
+            if b in an_z:
+                bonded_to_anion.add(int(a))
+        for sy in self.present:
+            zz = nums[sy]
+            if sy not in anions and elements.can_be_anion(sy) and zz not in bonded_to_anion:
+                anions.append(sy)
         if anions == list(start):
             return anions, f"{anions[0]} is the most electronegative element that can be an anion; no split closes the count"
         return anions, (
@@ -279,6 +309,13 @@ class _Context:
                     valid = False
                     note = f"{sm} is left as a cation bonded to {elements.symbols()[b if more == a else a]}"
                     break
+        if valid:
+            # An element that could be an anion, made a cation without a
+            # single bond to an anion (Cl in a hydrate split on O alone).
+            lonely = ~role & (dcnt == 0) & self.capable_atom
+            if lonely.any():
+                valid = False
+                note = f"{self.sym_of_atom[int(np.flatnonzero(lonely)[0])]} would be a cation without anion neighbours"
 
         saturated = self._saturated(role, ca)
         closure = self._close(role, per, cc, aa, residual * n_anion + cc_e, n_anion, saturated)

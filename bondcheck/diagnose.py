@@ -1,12 +1,20 @@
-"""Diagnose stage: turn a count into a verdict and findings with evidence."""
+"""Diagnose stage: turn a count into a verdict and ranked findings with evidence.
+
+Each probe is a small function over plain data (the crystal record, its
+contacts, sites and count) that returns findings; `diagnose` runs them and
+ranks the causes.
+"""
 from __future__ import annotations
+
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 
 from . import elements
 from . import findings as F
-from .bonds import Contacts
-from .count import Count, target
+from .bonds import Contacts, Criterion, find_contacts
+from .count import PAULING_K, Count, count, target
+from .motifs import Component, anion_components, find_clusters, wade
 from .record import Crystal
 from .symmetry import Sites
 
@@ -14,89 +22,113 @@ CONSISTENT = "consistent"
 MISMATCH = "mismatch"
 NOT_APPLICABLE = "not-applicable"
 
+# Swaps tried per site before giving up (keeps the probe cheap on big cells).
+MAX_SWAP_GROUPS = 24
+# Lone pair counted as stereochemically active above this offset (angstrom):
+# common practice, no source.
+ACTIVE_OFFSET = 0.25
+
+
+@dataclass(slots=True)
+class Case:
+    crystal: Crystal
+    contacts: Contacts
+    sites: Sites
+    count: Count | None
+    anions: list[str] | None = None
+    valence: dict = field(default_factory=dict)
+    criterion: Criterion = field(default_factory=Criterion)
+    fragile_sites: list[str] = field(default_factory=list)
+    components: list[Component] = field(default_factory=list)
+
 
 def _fmt(x: float) -> str:
     return f"{x:.3g}" if abs(x - round(x)) > 1e-6 else str(int(round(x)))
 
 
-def diagnose(crystal: Crystal, contacts: Contacts, sites: Sites, c: Count | None, fragile_sites: list[str]):
-    """Return (verdict, findings)."""
+def _label(crystal: Crystal, atoms) -> str:
+    atoms = np.asarray(atoms)
+    k = int(np.flatnonzero(atoms)[0]) if atoms.dtype == bool else int(atoms[0])
+    lab = str(crystal.labels[k]) if len(crystal.labels) else ""
+    return lab or f"{elements.symbols()[int(crystal.numbers[k])]}{k + 1}"
+
+
+def diagnose(crystal, contacts, sites, c, fragile_sites, anions=None, valence=None, criterion=None):
+    """Return (verdict, findings ranked most likely first, anion components)."""
+    case = Case(crystal, contacts, sites, c, anions, dict(valence or {}), criterion or Criterion(), list(fragile_sites))
     out: list[F.Finding] = []
     syms = elements.symbols()
     present = sorted({syms[z] for z in crystal.numbers})
     if c is None:
         out.append(F.NothingToCount(why=f"no element of {', '.join(present)} can take the anion role: a metal or intermetallic"))
         out.append(F.Metallic(why="only metals are present"))
-        return NOT_APPLICABLE, out
+        return NOT_APPLICABLE, out, []
     if len(present) == 1:
         el = present[0]
         if not elements.can_be_anion(el) or (c.vec_anion < 4 and el not in ("H", "He")):
             what = "a metal" if not elements.can_be_anion(el) else f"an element with {_fmt(c.vec_anion)} valence electrons"
             out.append(F.NothingToCount(why=f"{el} is {what}: no octets to complete by two-centre bonds"))
-            out.append(F.Metallic(why=f"elemental {el}: {_fmt(c.vec_anion)} valence electrons per atom, fewer than four"))
-            return NOT_APPLICABLE, out
+            out.append(F.Metallic(why=f"elemental {el}: {_fmt(c.vec_anion)} valence electrons per atom"))
+            return NOT_APPLICABLE, out, anion_components(crystal, contacts, c)
 
+    case.components = anion_components(crystal, contacts, c)
     partial = crystal.occupancy < 0.999
     if partial.any():
         n_sites = len({int(s) for s in sites.site[partial]})
-        out.append(F.OccupancyAverage(n=n_sites))
-    if fragile_sites:
-        out.append(
-            F.AmbiguousCutoff(sites=fragile_sites, n=len(fragile_sites), pct=3, evidence={"sites": fragile_sites})
-        )
+        out.append(F.OccupancyAverage(n=n_sites, evidence={"electrons_per_cell": round(c.electrons, 3)}))
 
-    cl = c.closure
-    if cl.closes:
-        out.extend(_explanations(crystal, contacts, c))
+    if c.closure.closes:
+        out.extend(_explanations(case))
         if not c.valid:
             out.append(F.InvalidSplit(note=c.note))
-        return CONSISTENT, out
+        out.extend(_cutoff_range(case, CONSISTENT))
+        return CONSISTENT, out, case.components
 
-    # Open count.
-    metallic = _metallic_reason(crystal, c)
-    if metallic:
-        out.append(F.Metallic(why=metallic, evidence={"vec_anion": round(c.vec_anion, 3)}))
+    clusters = _clusters(case)
+    if clusters and clusters[0].rank >= 1.0:
+        out.extend(clusters)
+        out.extend(_cutoff_range(case, CONSISTENT))
+        return CONSISTENT, out, case.components
+
+    found: list[F.Finding] = []
+    found += clusters
+    found += _metallic(case)
+    found += _hypervalent(case)
+    found += _oxidation_states(case)
+    found += _swaps(case)
+    found += _missing(case)
     if c.residual > 0:
-        out.append(F.ElectronExcess(e=_fmt(round(c.residual, 3)), evidence={"residual": round(c.residual, 3)}))
+        found.append(F.ElectronExcess(rank=0.2, e=_fmt(round(c.residual, 3)), evidence={"residual": round(c.residual, 3)}))
     else:
-        out.append(F.ElectronDeficit(e=_fmt(round(-c.residual, 3)), evidence={"residual": round(c.residual, 3)}))
-    return MISMATCH, out
+        found.append(F.ElectronDeficit(rank=0.2, e=_fmt(round(-c.residual, 3)), evidence={"residual": round(c.residual, 3)}))
+    found.sort(key=lambda f: -f.rank)
+    out = found + out
+    out.extend(_cutoff_range(case, MISMATCH))
+    return MISMATCH, out, case.components
 
 
-def _metallic_reason(crystal: Crystal, c: Count) -> str:
-    if c.vec_anion < 4:
-        return f"VEC per anion is {c.vec_anion:.2f}, below 4: too few electrons for octets"
-    z = crystal.numbers
-    an = c.role
-    if an.any():
-        coord = c.aa_bonds[an]
-        if coord.size and float(np.mean(coord)) >= 6:
-            return f"anions have {float(np.mean(coord)):.1f} anion neighbours on average: a close-packed metallic arrangement"
-    if all(elements.table()[elements.symbols()[k]]["group"] <= 14 for k in np.unique(z[an])):
-        if c.residual > 0:
-            return "the anions are group 13-14 elements with electrons left over: likely a polar intermetallic"
-    return ""
+# ---------------------------------------------------------------------------
+# Explaining a closed count
 
 
-def _explanations(crystal: Crystal, contacts: Contacts, c: Count) -> list[F.Finding]:
+def _explanations(case: Case) -> list[F.Finding]:
+    crystal, contacts, c = case.crystal, case.contacts, case.count
     out: list[F.Finding] = []
     syms = elements.symbols()
     cl = c.closure
     lone, dstates, lanth = [], [], []
-    weight = {}
     for g, k in cl.keep.items():
         site, z = c.groups[g]
         sym = syms[z]
         atoms = c.group_of == g
         w = float(np.sum(crystal.occupancy[atoms]))
-        weight[g] = w
         ccb = float(np.mean(c.aa_bonds[atoms]))
         nonbond = k - ccb
         blk = elements.block(sym)
-        v = elements.valence(sym)
+        v = case.valence.get(sym, elements.valence(sym))
         label = _label(crystal, atoms)
         if blk == "p" and nonbond > 1e-6:
-            lone.append((label, sym, w * nonbond))
+            lone.append((label, sym, w * nonbond, int(np.flatnonzero(atoms)[0])))
         elif blk == "d" or sym in elements.DLIKE_ACTINIDES:
             if k > 1e-6:
                 dstates.append((label, sym, v - k, k))
@@ -104,10 +136,17 @@ def _explanations(crystal: Crystal, contacts: Contacts, c: Count) -> list[F.Find
             lanth.append(label)
     if lone:
         n = sum(x[2] for x in lone)
-        who = ", ".join(f"{lab} ({s})" for lab, s, _ in lone)
+        who = ", ".join(f"{lab} ({s})" for lab, s, _, _ in lone)
         out.append(F.LonePairs(sites=[x[0] for x in lone], n=_fmt(n), who=who, evidence={"electrons_per_cell": round(n, 3)}))
+        for lab, s, _, atom in lone:
+            off = _centroid_offset(case, atom)
+            if off is None:
+                continue
+            state = "stereochemically active" if off > ACTIVE_OFFSET else "inert (centred)"
+            out.append(F.LonePairActivity(sites=[lab], who=f"{lab} ({s})", state=state, offset=f"{off:.2f}",
+                                          evidence={"offset_A": round(off, 3), "active": bool(off > ACTIVE_OFFSET)}))
     if dstates:
-        states = ", ".join(f"{lab} {s}{_sign(ox)} d{_fmt(k)}" for lab, s, ox, k in dstates)
+        states = ", ".join(f"{s}{_sign(ox)} d{_fmt(k)} at {lab}" for lab, s, ox, k in dstates)
         who = ", ".join(sorted({s for _, s, _, _ in dstates}))
         out.append(
             F.DElectrons(
@@ -120,37 +159,37 @@ def _explanations(crystal: Crystal, contacts: Contacts, c: Count) -> list[F.Find
     if lanth:
         out.append(F.DivalentLanthanide(sites=lanth, who=", ".join(lanth)))
     if np.any(c.cc_bond):
-        bi = contacts.i[contacts.bonded][c.cc_bond]
-        bj = contacts.j[contacts.bonded][c.cc_bond]
-        dd = contacts.d[contacts.bonded][c.cc_bond]
-        w = contacts.weight[contacts.bonded][c.cc_bond]
-        pairs = sorted({f"{syms[crystal.numbers[a]]}-{syms[crystal.numbers[b]]} {d:.2f} A" for a, b, d in zip(bi, bj, dd)})
+        pairs, w = _pairs(case, c.cc_bond)
         out.append(
             F.CationCationBonds(
-                n=_fmt(float(np.sum(w))),
-                pairs=", ".join(pairs[:4]),
-                e=_fmt(round(c.cc_observed, 3)),
-                evidence={"bonds_per_cell": round(float(np.sum(w)), 3), "contacts": pairs},
+                n=_fmt(w), pairs=", ".join(pairs[:4]), e=_fmt(round(c.cc_observed, 3)),
+                evidence={"bonds_per_cell": round(w, 3), "contacts": pairs},
             )
         )
     if cl.pi_from_short > 0:
-        bi = contacts.i[contacts.bonded][c.aa_bond]
-        bj = contacts.j[contacts.bonded][c.aa_bond]
-        dd = contacts.d[contacts.bonded][c.aa_bond]
-        rat = contacts.ratio[contacts.bonded][c.aa_bond]
-        order = np.argsort(rat)[:4]
-        pairs = sorted({f"{syms[crystal.numbers[bi[k]]]}-{syms[crystal.numbers[bj[k]]]} {dd[k]:.2f} A" for k in order})
-        out.append(
-            F.MultipleBonds(e=_fmt(cl.pi_from_short), pairs=", ".join(pairs), evidence={"pi_electrons_per_cell": cl.pi_from_short, "shortest": pairs})
-        )
+        pairs, _ = _pairs(case, c.aa_bond, shortest=4)
+        out.append(F.MultipleBonds(e=_fmt(cl.pi_from_short), pairs=", ".join(pairs),
+                                   evidence={"pi_electrons_per_cell": cl.pi_from_short, "shortest": pairs}))
     if cl.pi_from_planar > 0:
         out.append(F.PiBonds(n=_fmt(cl.pi_from_planar), evidence={"planar_sites_per_cell": cl.pi_from_planar}))
-    if cl.mixed_groups:
-        for g in cl.mixed_groups:
-            atoms = c.group_of == g
-            sym = syms[c.groups[g][1]]
-            out.append(F.MixedValence(sites=[_label(crystal, atoms)], who=_label(crystal, atoms), avg=f"{elements.valence(sym) - cl.keep[g]:+.2f}"))
+    for g in cl.mixed_groups:
+        atoms = c.group_of == g
+        sym = syms[c.groups[g][1]]
+        out.append(F.MixedValence(sites=[_label(crystal, atoms)], who=_label(crystal, atoms),
+                                  avg=f"{elements.valence(sym) - cl.keep[g]:+.2f}"))
     return out
+
+
+def _pairs(case: Case, mask, shortest: int | None = None):
+    crystal, contacts = case.crystal, case.contacts
+    syms = elements.symbols()
+    b = contacts.bonded
+    bi, bj, dd, rat, w = contacts.i[b][mask], contacts.j[b][mask], contacts.d[b][mask], contacts.ratio[b][mask], contacts.weight[b][mask]
+    order = np.argsort(rat)
+    if shortest:
+        order = order[:shortest]
+    pairs = sorted({f"{syms[crystal.numbers[bi[k]]]}-{syms[crystal.numbers[bj[k]]]} {dd[k]:.2f} A" for k in order})
+    return pairs, float(np.sum(w))
 
 
 def _sign(ox: float) -> str:
@@ -161,7 +200,388 @@ def _sign(ox: float) -> str:
     return f"{ox:+.2f}"
 
 
-def _label(crystal: Crystal, atoms: np.ndarray) -> str:
-    k = int(np.flatnonzero(atoms)[0])
-    lab = str(crystal.labels[k]) if len(crystal.labels) else ""
-    return lab or f"{elements.symbols()[int(crystal.numbers[k])]}{k + 1}"
+def _neighbour_vectors(case: Case, atom: int, partner_mask=None) -> np.ndarray:
+    c = case.contacts
+    b = c.bonded.copy()
+    if partner_mask is not None:
+        b &= partner_mask
+    sel = b & ((c.i == atom) | (c.j == atom))
+    if not sel.any():
+        return np.zeros((0, 3))
+    sub = replace(c, i=c.i[sel], j=c.j[sel], shift=c.shift[sel])
+    v = sub.vectors(case.crystal)
+    flip = sub.i != atom
+    v[flip] *= -1
+    return v
+
+
+def _centroid_offset(case: Case, atom: int) -> float | None:
+    role = case.count.role
+    c = case.contacts
+    to_anion = role[c.i] != role[c.j]
+    v = _neighbour_vectors(case, atom, to_anion)
+    if v.shape[0] < 2:
+        return None
+    return float(np.linalg.norm(v.mean(axis=0)))
+
+
+# ---------------------------------------------------------------------------
+# Probes for an open count
+
+
+def _electrons_given(case: Case) -> float:
+    """Electrons the cations hand over, taking electropositive cations fully."""
+    c, cr = case.count, case.crystal
+    syms = elements.symbols()
+    tot = 0.0
+    for k in np.flatnonzero(~c.role):
+        sym = syms[cr.numbers[k]]
+        tot += cr.occupancy[k] * case.valence.get(sym, elements.valence(sym))
+    return tot
+
+
+def _clusters(case: Case) -> list[F.Finding]:
+    c, cr = case.count, case.crystal
+    syms = elements.symbols()
+    val = lambda k: case.valence.get(syms[cr.numbers[k]], elements.valence(syms[cr.numbers[k]]))
+    found = find_clusters(cr, case.contacts, c, val)
+    if not found:
+        return []
+    in_cluster = np.zeros(cr.natoms, dtype=bool)
+    for cl in found:
+        in_cluster[cl.atoms] = True
+    others = c.role & ~in_cluster
+    need = 0.0
+    for k in np.flatnonzero(others):
+        sym = syms[cr.numbers[k]]
+        need += cr.occupancy[k] * (target(sym) - val(k) - c.aa_bonds[k])
+    to_clusters = _electrons_given(case) - need
+    found = wade(found, to_clusters)
+    closes = all(cl.kind != "none" for cl in found)
+    by_formula: dict[str, list] = {}
+    for cl in found:
+        by_formula.setdefault(_formula(cr, cl.atoms), []).append(cl)
+    out = []
+    for formula, group in by_formula.items():
+        cl = group[0]
+        pairs = cl.skeletal_electrons / 2
+        verdict = f"a {cl.kind} count (closes)" if cl.kind != "none" else (
+            f"no closo/nido/arachno count (closo needs {cl.expected['closo']})")
+        f = F.DeficientCluster(
+            sites=sorted({_label(cr, [a]) for a in cl.atoms}),
+            rank=1.0 if closes else 0.6,
+            severity="info" if closes else "warning",
+            n=len(group), formula=formula, pairs=_fmt(round(pairs, 2)), vertices=cl.vertices, verdict=verdict,
+            evidence={"vertices": cl.vertices, "edges": cl.edges, "exo_bonds": cl.exo_bonds,
+                      "skeletal_electrons": round(cl.skeletal_electrons, 3), "kind": cl.kind,
+                      "electrons_from_cations_per_cell": round(to_clusters, 3), "expected_pairs": cl.expected},
+        )
+        out.append(f)
+    out.sort(key=lambda f: -f.rank)
+    return out
+
+
+def _formula(cr: Crystal, atoms) -> str:
+    syms = elements.symbols()
+    zs, n = np.unique(cr.numbers[atoms], return_counts=True)
+    return "".join(f"{syms[z]}{k if k > 1 else ''}" for z, k in zip(zs, n))
+
+
+def _metallic(case: Case) -> list[F.Finding]:
+    c, cr = case.count, case.crystal
+    an = c.role
+    ev = {"vec_anion": round(c.vec_anion, 3)}
+    if c.vec_anion < 4:
+        return [F.Metallic(rank=0.7, why=f"VEC per anion is {c.vec_anion:.2f}, below 4: too few electrons for octets", evidence=ev)]
+    coord = c.aa_bonds[an]
+    if coord.size and float(np.mean(coord)) >= 6:
+        return [F.Metallic(rank=0.7, why=f"anions have {float(np.mean(coord)):.1f} anion neighbours on average: a close-packed metallic arrangement", evidence=ev)]
+    groups = {elements.table()[elements.symbols()[k]]["group"] for k in np.unique(cr.numbers[an])}
+    if max(groups) <= 14 and c.residual > 0:
+        return [F.Metallic(rank=0.5, why="the anions are group 13-14 elements with electrons left over: likely a polar intermetallic", evidence=ev)]
+    # Many near-equidistant anion neighbours without a gap.
+    gaps = []
+    for s in np.unique(case.sites.site[an]):
+        k = int(case.sites.representative[s])
+        if c.aa_bonds[k] >= 5:
+            gaps.append(k)
+    if gaps and c.residual > 0:
+        return [F.Metallic(rank=0.45, why=f"{len(gaps)} anion site(s) with five or more anion neighbours: delocalised bonding", evidence=ev)]
+    return []
+
+
+def _hypervalent(case: Case) -> list[F.Finding]:
+    c, cr = case.count, case.crystal
+    if c.residual <= 0:
+        return []
+    syms = elements.symbols()
+    rad = elements.radii()
+    out = []
+    aa_mask = np.zeros(case.contacts.i.size, dtype=bool)
+    aa_mask[np.flatnonzero(case.contacts.bonded)[c.aa_bond]] = True
+    for s in np.unique(case.sites.site[c.role]):
+        k = int(case.sites.representative[s])
+        if not c.role[k]:
+            continue
+        sym = syms[cr.numbers[k]]
+        allowed = target(sym) - elements.valence(sym)
+        n = c.aa_bonds[k]
+        if n <= allowed + 1e-6 or allowed < 0:
+            continue
+        v = _neighbour_vectors(case, k, aa_mask)
+        if v.shape[0] < 2:
+            continue
+        d = np.linalg.norm(v, axis=1)
+        u = v / d[:, None]
+        cosines = u @ u.T
+        linear_pairs = int(np.sum(np.triu(cosines < -0.94, 1)))
+        shape = None
+        if v.shape[0] == 2 and linear_pairs == 1:
+            shape = "linear"
+        elif v.shape[0] == 3 and linear_pairs == 1:
+            shape = "T-shaped"
+        elif v.shape[0] == 4 and linear_pairs == 2:
+            shape = "square-planar"
+        if shape is None:
+            continue
+        # Pauling bond orders from lengths of the atom's anion-anion bonds.
+        partners = _partner_numbers(case, k, aa_mask)
+        d1 = rad[cr.numbers[k]] + rad[partners]
+        orders = 10.0 ** ((d1 - d) / PAULING_K)
+        if float(np.mean(orders)) > 0.85:
+            continue
+        vsum = float(np.sum(orders))
+        lab = _label(cr, [k])
+        out.append(F.Hypervalent(
+            sites=[lab], rank=0.96, who=f"{lab} ({sym})", n=_fmt(n), allowed=allowed, shape=shape, vsum=f"{vsum:.2f}",
+            evidence={"distances_A": [round(x, 3) for x in sorted(d)], "bond_orders": [round(x, 3) for x in sorted(orders, reverse=True)],
+                      "valence_sum": round(vsum, 3), "shape": shape},
+        ))
+    return out
+
+
+def _partner_numbers(case: Case, atom: int, mask) -> np.ndarray:
+    c = case.contacts
+    sel = c.bonded & mask & ((c.i == atom) | (c.j == atom))
+    other = np.where(c.i[sel] == atom, c.j[sel], c.i[sel])
+    return case.crystal.numbers[other]
+
+
+def _oxidation_states(case: Case) -> list[F.Finding]:
+    """Implied oxidation state of the d-block cations if they took the whole residual."""
+    c, cr = case.count, case.crystal
+    syms = elements.symbols()
+    tm = [k for k in np.flatnonzero(~c.role) if elements.block(syms[cr.numbers[k]]) == "d"]
+    if not tm:
+        return []
+    w = float(np.sum(cr.occupancy[tm]))
+    keep_needed = c.residual * c.n_anion + c.cc_observed * c.n_anion
+    kept_each = keep_needed / w
+    els = sorted({syms[cr.numbers[k]] for k in tm})
+    if len(els) != 1:
+        return []
+    el = els[0]
+    v = elements.valence(el)
+    ox = v - kept_each
+    common, known = elements.oxidation_states(el)
+    if ox < -1e-6:
+        why = "a negative state"
+    elif ox > v + 1e-6:
+        why = f"above its group number {v}"
+    elif abs(ox - round(ox)) < 0.05 and round(ox) not in known:
+        why = "not a known state"
+    elif abs(ox - round(ox)) >= 0.05 and not (min(known, default=0) <= ox <= max(known, default=0)):
+        why = "outside its known range"
+    else:
+        return []
+    return [F.OddOxidationState(rank=0.55, sites=[_label(cr, [tm[0]])], who=el, ox=f"{ox:+.2f}", why=why,
+                                evidence={"implied_oxidation_state": round(ox, 3), "known_states": sorted(known)})]
+
+
+def _recount(case: Case, crystal: Crystal, sites: Sites) -> Count | None:
+    try:
+        contacts = find_contacts(crystal, case.criterion)
+        return count(crystal, contacts, sites, case.anions, case.valence)
+    except Exception:  # a swapped structure that cannot be counted is no candidate
+        return None
+
+
+def _swap_targets(z: int) -> list[int]:
+    syms = elements.symbols()
+    row = elements.table()[syms[z]]["row"]
+    out = []
+    for dz in (-1, 1):
+        t = z + dz
+        if not 1 <= t <= 103:
+            continue
+        rt = elements.table()[syms[t]]
+        if rt["row"] != row or rt["group"] == 18 or row_is_noble(z):
+            continue
+        out.append(t)
+    return out
+
+
+def row_is_noble(z: int) -> bool:
+    return elements.table()[elements.symbols()[z]]["group"] == 18
+
+
+def _swaps(case: Case) -> list[F.Finding]:
+    """Change one crystallographic site's element by one in atomic number, or
+    mix it, and see whether the count closes."""
+    c, cr, sites = case.count, case.crystal, case.sites
+    if cr.occupancy.min() < 0.999 or len(c.groups) > MAX_SWAP_GROUPS:
+        return []
+    syms = elements.symbols()
+    hits, mixes = [], []
+    for g, (s, z) in enumerate(c.groups):
+        atoms = c.group_of == g
+        for t in _swap_targets(z):
+            nums = cr.numbers.copy()
+            nums[atoms] = t
+            alt = replace(cr, numbers=nums)
+            cc = _recount(case, alt, sites)
+            if cc is not None and cc.closure.closes and cc.closure.cost < 1:
+                hits.append((cc.closure.cost, g, z, t))
+            elif cc is not None:
+                mixes.append((g, z, t))
+    out = []
+    for cost, g, z, t in sorted(hits)[:3]:
+        atoms = c.group_of == g
+        lab = _label(cr, atoms)
+        out.append(F.Misassigned(
+            sites=[lab], rank=0.95 - 0.05 * cost, site=lab, old=syms[z], new=syms[t], extra="",
+            evidence={"site": lab, "from": syms[z], "to": syms[t], "atoms_per_cell": int(np.sum(atoms)),
+                      "residual_as_refined": round(c.residual, 3)},
+        ))
+    if out:
+        return out
+    # Mixed occupancy: the fraction that would cancel the residual.
+    for g, z, t in mixes:
+        atoms = c.group_of == g
+        w = float(np.sum(cr.occupancy[atoms]))
+        dv = elements.valence(syms[t]) - elements.valence(syms[z])
+        if dv == 0 or not c.role[atoms].all():
+            continue
+        x = -c.residual * c.n_anion / (w * dv)
+        if not 0.05 <= x <= 0.95:
+            continue
+        alt = _mixed(cr, atoms, t, x)
+        alt_sites = _extend_sites(sites, atoms)
+        cc = _recount(case, alt, alt_sites)
+        if cc is not None and cc.closure.closes and cc.closure.cost < 1:
+            lab = _label(cr, atoms)
+            out.append(F.Misassigned(
+                sites=[lab], rank=0.75, site=lab, old=syms[z], new=f"{syms[z]}{1 - x:.2f}{syms[t]}{x:.2f}",
+                extra=" (mixed occupancy)",
+                evidence={"site": lab, "from": syms[z], "to": syms[t], "fraction": round(x, 3)},
+            ))
+    return out[:3]
+
+
+def _mixed(cr: Crystal, atoms: np.ndarray, t: int, x: float) -> Crystal:
+    occ = cr.occupancy.copy()
+    occ[atoms] *= 1 - x
+    idx = np.flatnonzero(atoms)
+    return replace(
+        cr,
+        frac=np.vstack([cr.frac, cr.frac[idx]]),
+        numbers=np.concatenate([cr.numbers, np.full(idx.size, t)]),
+        occupancy=np.concatenate([occ, cr.occupancy[idx] * x]),
+        labels=np.concatenate([cr.labels, cr.labels[idx]]) if len(cr.labels) else cr.labels,
+        charges=np.concatenate([cr.charges, np.full(idx.size, np.nan)]),
+    )
+
+
+def _extend_sites(sites: Sites, atoms: np.ndarray) -> Sites:
+    return replace(sites, site=np.concatenate([sites.site, sites.site[atoms]]))
+
+
+def _missing(case: Case) -> list[F.Finding]:
+    """Whole atoms per formula unit that would close the count."""
+    from .api import formula_of
+
+    c, cr = case.count, case.crystal
+    syms = elements.symbols()
+    _, z_cell = formula_of(cr)
+    e_formula = c.residual * c.n_anion / z_cell  # electrons per formula unit
+    if abs(e_formula) < 0.5:
+        return []
+    out = []
+    present = sorted({syms[z] for z in cr.numbers})
+    anion_syms = [s for s in present if s in c.anions]
+    if e_formula < 0:
+        short = -e_formula
+        if "H" not in present and set(anion_syms) & {"O", "N", "C"}:
+            n_h = short
+            if abs(n_h - round(n_h)) < 0.05:
+                per = f"{n_h / (c.n_anion / z_cell):.2g} per anion"
+                return [F.MissingHydrogen(rank=0.97, n=_fmt(round(n_h)), per=per,
+                                          evidence={"electrons_short_per_formula": round(short, 3)})]
+        for s in present:
+            if s in c.anions:
+                continue
+            v = elements.valence(s)
+            k = short / v
+            if v and abs(k - round(k)) < 0.05 and 1 <= round(k) <= 4:
+                out.append(F.MissingAtoms(rank=0.5, what=f"{_fmt(round(k))} more {s}",
+                                          evidence={"electrons_per_formula": round(e_formula, 3), "element": s, "count": round(k)}))
+        for s in anion_syms:
+            need = target(s) - elements.valence(s)
+            k = short / need if need else 0
+            if need and abs(k - round(k)) < 0.05 and 1 <= round(k) <= 4:
+                out.append(F.MissingAtoms(rank=0.45, what=f"{_fmt(round(k))} {s} fewer",
+                                          evidence={"electrons_per_formula": round(e_formula, 3), "element": s, "count": -round(k)}))
+    else:
+        for s in anion_syms:
+            need = target(s) - elements.valence(s)
+            k = e_formula / need if need else 0
+            if need and abs(k - round(k)) < 0.05 and 1 <= round(k) <= 4:
+                out.append(F.MissingAtoms(rank=0.5, what=f"{_fmt(round(k))} more {s}",
+                                          evidence={"electrons_per_formula": round(e_formula, 3), "element": s, "count": round(k)}))
+        for s in present:
+            if s in c.anions:
+                continue
+            v = elements.valence(s)
+            k = e_formula / v if v else 0
+            if v and abs(k - round(k)) < 0.05 and 1 <= round(k) <= 4:
+                out.append(F.MissingAtoms(rank=0.45, what=f"{_fmt(round(k))} {s} fewer",
+                                          evidence={"electrons_per_formula": round(e_formula, 3), "element": s, "count": -round(k)}))
+    return out[:3]
+
+
+# ---------------------------------------------------------------------------
+# Sensitivity to the bond criterion
+
+SCALES = (0.94, 0.96, 0.98, 1.02, 1.04, 1.06)
+
+
+def _cutoff_range(case: Case, verdict: str) -> list[F.Finding]:
+    """When contacts sit near the criterion, the range of criterion scales over
+    which the verdict holds."""
+    if not case.fragile_sites:
+        return []
+    holds = [1.0]
+    for f in SCALES:
+        crit = case.criterion.scaled(f)
+        try:
+            contacts = find_contacts(case.crystal, crit)
+            cc = count(case.crystal, contacts, case.sites, case.anions, case.valence)
+        except Exception:
+            continue
+        v = NOT_APPLICABLE if cc is None else (CONSISTENT if cc.closure.closes else MISMATCH)
+        if v == verdict:
+            holds.append(f)
+    lo, hi = min(holds), max(holds)
+    # Contiguous range around 1.
+    grid = sorted(set(SCALES) | {1.0})
+    i = grid.index(1.0)
+    a = i
+    while a > 0 and grid[a - 1] in holds:
+        a -= 1
+    b = i
+    while b < len(grid) - 1 and grid[b + 1] in holds:
+        b += 1
+    lo, hi = grid[a], grid[b]
+    pct = f"{(lo - 1) * 100:+.0f}% to {(hi - 1) * 100:+.0f}%"
+    return [F.AmbiguousCutoff(sites=case.fragile_sites, n=len(case.fragile_sites), pct=3,
+                              rng=pct, evidence={"sites": case.fragile_sites, "verdict_holds_for_scale": [lo, hi]})]

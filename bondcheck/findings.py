@@ -24,13 +24,16 @@ class Finding:
     # a consistent verdict rather than a problem).
     explains: ClassVar[bool] = False
 
-    __slots__ = ("args", "sites", "evidence", "rank")
+    __slots__ = ("args", "sites", "evidence", "rank", "level")
 
-    def __init__(self, sites=(), evidence=None, rank: float = 0.0, **args):
+    def __init__(self, sites=(), evidence=None, rank: float = 0.0, severity: str | None = None, **args):
         self.args = args
         self.sites = list(sites)
         self.evidence = dict(evidence or {})
         self.rank = rank
+        assert severity is None or severity in SEVERITIES, severity
+        # An instance may raise or lower its class's default severity.
+        self.level = severity or self.severity
 
     @property
     def message(self) -> str:
@@ -39,7 +42,7 @@ class Finding:
     def to_dict(self) -> dict:
         return {
             "slug": self.slug,
-            "severity": self.severity,
+            "severity": self.level,
             "message": self.message,
             "sites": self.sites,
             "evidence": self.evidence,
@@ -75,7 +78,7 @@ def lookup(slug: str) -> type[Finding] | None:
 class LonePairs(Finding):
     slug = "lone-pairs"
     explains = True
-    template = "{n} electrons per formula stay on {who} as ns2 lone pairs"
+    template = "{n} electrons per cell stay on {who} as ns2 lone pairs"
     title = "Lone pairs on p-block cations"
     meaning = (
         "Heavier p-block cations often keep their ns2 pair (Tl+, Sn2+, Pb2+, Sb3+, Bi3+, Te4+, I5+). "
@@ -230,7 +233,7 @@ class InvalidSplit(Finding):
 class AmbiguousCutoff(Finding):
     slug = "ambiguous-cutoff"
     severity = "info"
-    template = "the bond count at {n} sites changes within {pct}% of the bond criterion"
+    template = "the bond count at {n} site(s) changes within {pct}% of the bond criterion; the verdict holds for criterion changes of {rng}"
     title = "Bond count sensitive to the criterion"
     meaning = "A contact lies close to the bond criterion, so a slightly different criterion would count it differently."
     fires_when = "Scaling the criterion by a few percent adds or removes a bond at a site."
@@ -245,3 +248,93 @@ class NothingToCount(Finding):
     meaning = "The structure has no element that can take the anion role (a metal or intermetallic), so the 8-N rule has nothing to say."
     fires_when = "Only metals are present, or a single metallic element."
     next_steps = "Nothing; the verdict is not-applicable."
+
+
+# --------------------------------------------------------------------------
+# Deeper diagnosis
+
+
+@register
+class Hypervalent(Finding):
+    slug = "hypervalent"
+    template = "{who} has {n} anion neighbours where the 8-N rule allows {allowed}, {shape}, bond orders summing to {vsum}"
+    title = "Hypervalent (three-centre, four-electron) bonding"
+    meaning = (
+        "An anion with more anion neighbours than 8-N allows, at lengthened distances and in a linear or square-planar "
+        "arrangement, shares electron-rich three-centre bonds (linear I3-, Sb square nets). Each such bond has order "
+        "about 1/2; Pauling's relation d(n) = d(1) - 0.60 log10 n turns the lengths into orders whose sum is the atom's valence."
+    )
+    fires_when = "An anion site has more anion-anion bonds than its neutral element makes, in a linear, T-shaped or square-planar arrangement, with bond orders below 0.85."
+    next_steps = "This is a known bonding mode, not an error. Check that the long contacts are real and not a disorder artefact."
+
+
+@register
+class DeficientCluster(Finding):
+    slug = "electron-deficient-cluster"
+    template = "{n} deltahedral {formula} cluster(s) per cell: {pairs} skeletal electron pairs for {vertices} vertices, {verdict}"
+    title = "Electron-deficient deltahedral clusters (Wade-Mingos count)"
+    meaning = (
+        "Anion atoms with more than four homoatomic neighbours forming deltahedra (B6, B12, Ga and In clusters) bond by "
+        "multicentre skeletal orbitals, not two-centre bonds. K. Wade's rules (1971): a closo n-vertex deltahedron needs "
+        "n + 1 skeletal electron pairs, nido n + 2, arachno n + 3."
+    )
+    fires_when = "The anion-anion bond graph has closed clusters of edges that all lie in triangles."
+    next_steps = "If the cluster count does not close, check the cations' count and occupancy and the cluster's vertex count."
+
+
+@register
+class LonePairActivity(Finding):
+    slug = "lone-pair-activity"
+    template = "{who}: the lone pair is {state} (cation {offset} A off the centroid of its neighbours)"
+    title = "Stereochemical activity of a lone pair"
+    meaning = "An active ns2 pair pushes the cation off the centre of its coordination polyhedron; an inert pair leaves it centred."
+    fires_when = "The count sets a lone pair aside on a p-block cation."
+    next_steps = "An active pair with a centred cation (or the reverse) can mean a wrong element or a missed disorder."
+
+
+@register
+class OddOxidationState(Finding):
+    slug = "implausible-oxidation-state"
+    severity = "error"
+    template = "the count implies {who} at {ox}, {why}"
+    title = "Implausible oxidation state"
+    meaning = "The electrons left over (or missing) would put a transition metal at an oxidation state that is negative, above its group number or unknown."
+    fires_when = "The count does not close and the implied oxidation state of the d-block cations is not a known one."
+    next_steps = "Check the metal's element assignment, its occupancy and whether anion atoms are missing."
+
+
+@register
+class Misassigned(Finding):
+    slug = "possibly-misassigned-element"
+    severity = "warning"
+    template = "site {site} ({old}): as {new} the count closes{extra}"
+    title = "Possibly misassigned element"
+    meaning = (
+        "Changing the element at one crystallographic site to a neighbour in the same period (Ga/Ge, Al/Si, In/Sn, Sb/Te, "
+        "Tl/Pb/Bi, N/O, O/F) or to a mixed occupancy closes the electron count. X-ray scattering hardly tells such "
+        "neighbours apart, so a mistyped site is a common error."
+    )
+    fires_when = "The count does not close as refined but closes with one site's element changed by one in atomic number, or mixed."
+    next_steps = "Check the site's displacement parameters, bond lengths and the synthesis; anomalous scattering or neutron data can settle it."
+
+
+@register
+class MissingAtoms(Finding):
+    slug = "possibly-missing-atoms"
+    severity = "warning"
+    template = "{what} per formula unit would close the count"
+    title = "Possibly missing or extra atoms"
+    meaning = "The residual equals the electrons of a whole number of cations or anions per formula unit: atoms may be missing from the model, or extra."
+    fires_when = "The count does not close and the residual per formula unit is a whole multiple of one element's electrons."
+    next_steps = "Look at the difference map for unassigned density, and at the refined formula against the analysis."
+
+
+@register
+class MissingHydrogen(Finding):
+    slug = "missing-hydrogen"
+    severity = "warning"
+    template = "{n} H per formula unit ({per}) would close the count; the file has no hydrogen"
+    title = "Possibly missing hydrogen"
+    meaning = "O, N or C atoms are electron-short by whole electrons and the model has no H: hydroxide, water or amine hydrogens were probably not located."
+    fires_when = "The residual is negative, the short atoms are O, N or C, and no H is in the file."
+    next_steps = "Locate H in a difference map or place it geometrically; check hydrogen-bond distances between O atoms."
