@@ -17,7 +17,7 @@ import os
 import re
 from functools import lru_cache
 from pathlib import Path
-from typing import Iterator
+from typing import Iterator, NamedTuple
 
 import gemmi
 import numpy as np
@@ -104,8 +104,11 @@ def iter_structure_files(path) -> Iterator[Path]:
         yield root.joinpath(*parts)
 
 
+_NOT_STRUCTURES = ("README", "LICENSE", "LICENCE", "COPYING", "CHANGELOG")
+
+
 def _is_structure_name(fname: str) -> bool:
-    if fname.startswith("."):
+    if fname.startswith(".") or fname.upper().startswith(_NOT_STRUCTURES):
         return False
     if fname.startswith(_VASP_PREFIXES):
         return True
@@ -531,9 +534,15 @@ def _encode(rot: np.ndarray, tran: np.ndarray) -> np.ndarray:
     return r * _DEN ** 3 + t
 
 
-def _group(ops: list[gemmi.Op]) -> tuple[np.ndarray, np.ndarray, bool]:
-    """Rotations (m,3,3) and translations (m,3) of the group the operations
-    generate, identity first; the flag tells whether operations had to be added."""
+class _Group(NamedTuple):
+    rot: np.ndarray      # (m, 3, 3) rotation parts, identity first
+    tran: np.ndarray     # (m, 3) translation parts in [0, 1)
+    table: np.ndarray    # (m, m) index of the product of operations i and j
+    completed: bool      # operations had to be added to close the group
+
+
+def _group(ops: list[gemmi.Op]) -> _Group:
+    """The space group the operations generate."""
     rot = np.array([op.rot for op in ops], dtype=np.int64)
     tran = np.array([op.tran for op in ops], dtype=np.int64).reshape(-1, 3) % _DEN
     if np.any(rot % _DEN):
@@ -565,11 +574,17 @@ def _group(ops: list[gemmi.Op]) -> tuple[np.ndarray, np.ndarray, bool]:
         raise StructureError("symmetry operators do not form a space group")
     ident = _encode(np.eye(3, dtype=np.int64)[None], np.zeros((1, 3), dtype=np.int64))[0]
     order = np.argsort(keys != ident, kind="stable")
-    rot = rot[order].astype(np.float64)
-    tran = tran[order].astype(np.float64) / _DEN
-    rot.setflags(write=False)  # cached and shared between calls
-    tran.setflags(write=False)
-    return rot, tran, len(keys) != n_given
+    rot, tran, keys = rot[order], tran[order], keys[order]
+    # product table: table[i, j] is the index of operation i applied after j
+    r2 = np.einsum("iab,jbc->ijac", rot, rot).reshape(-1, 3, 3)
+    t2 = (np.einsum("iab,jb->ija", rot, tran) + tran[:, None, :]).reshape(-1, 3) % _DEN
+    by_key = np.argsort(keys)
+    table = by_key[np.searchsorted(keys[by_key], _encode(r2, t2))].reshape(len(keys), len(keys))
+    group = _Group(rot.astype(np.float64), tran.astype(np.float64) / _DEN, table,
+                   len(keys) != n_given)
+    for a in (group.rot, group.tran, group.table):
+        a.setflags(write=False)  # cached and shared between calls
+    return group
 
 
 @lru_cache(maxsize=4096)
@@ -619,7 +634,7 @@ def _group_from_hall(hall: str):
 def _symmetry(block, alpha: float, gamma: float):
     """Candidate symmetry groups for a block and a description for meta.
 
-    Returns ([(rot, tran, completed, setting), ...], hm_name, how).  More than
+    Returns ([(group, setting), ...], hm_name, how).  More than
     one candidate only when just a space-group name is given and the group has
     two origin choices.
     """
@@ -635,21 +650,18 @@ def _symmetry(block, alpha: float, gamma: float):
         if triplets:
             centerings = _find_column(block, _MAGN_CEN_TAGS)
     if triplets and not (len(triplets) == 1 and _unquote(triplets[0]).strip() in ("?", ".")):
-        rot, tran, completed = _group_from_triplets(tuple(triplets), tuple(centerings))
-        return [(rot, tran, completed, "")], hm, "operators"
+        return [(_group_from_triplets(tuple(triplets), tuple(centerings)), "")], hm, "operators"
 
     hall = _find_value(block, _HALL_TAGS)
     hall = _unquote(hall).strip() if hall is not None else ""
     if hall and hall not in ("?", "."):
-        rot, tran, completed = _group_from_hall(hall)
-        return [(rot, tran, completed, "")], hm, "hall"
+        return [(_group_from_hall(hall), "")], hm, "hall"
 
     how = "hm"
     if not hm:
         number = _find_value(block, _NUMBER_TAGS)
         if number is None or _unquote(number).strip() in ("?", "."):
-            ident = np.eye(3)[None], np.zeros((1, 3))
-            return [(ident[0], ident[1], False, "P 1")], "", "none"
+            return [(_group_from_triplets(("x,y,z",)), "P 1")], "", "none"
         try:
             sg = gemmi.find_spacegroup_by_number(int(_num(number)))
         except (RuntimeError, ValueError, OverflowError):
@@ -667,35 +679,38 @@ def _symmetry(block, alpha: float, gamma: float):
             settings.append(sg.xhm())
     if not settings:
         raise StructureError(f"unknown space group {name!r} and no symmetry operators")
-    return [(*_group_from_spacegroup(x), x) for x in settings], hm, how
+    return [(_group_from_spacegroup(x), x) for x in settings], hm, how
 
 
 # ---- symmetry expansion ---------------------------------------------------
 
-def _expand(frac: np.ndarray, cell: np.ndarray, rot: np.ndarray, tran: np.ndarray,
-            inside: bool = False) -> tuple[np.ndarray, np.ndarray]:
+def _expand(frac: np.ndarray, cell: np.ndarray, group: _Group,
+            inside: bool = False) -> tuple[np.ndarray, np.ndarray | None]:
     """All images of the sites in the unit cell.
 
     Returns the positions and, for each, the index of its site (None when
     the group is the identity alone and positions are the sites themselves).
     ``inside`` tells that all coordinates are already in [0, 1).
+
+    Images g x and h x of a site x are one atom when h^-1 g x is within
+    MERGE_TOL of x, that is when g lies in the coset h S of the site's
+    stabiliser S; of each coset the image with the lowest index is kept.
     """
+    rot, tran = group.rot, group.tran
     n, m = len(frac), len(rot)
     if m == 1:  # the identity alone (P 1)
         return (frac if inside else _wrap(frac)), None
     pos = np.einsum("kij,nj->nki", rot, frac) + tran  # (n, m, 3)
-    pos -= np.floor(pos)
-    metric = cell @ cell.T
-    earlier = np.tril(np.ones((m, m), dtype=bool), -1)
-    keep = np.empty((n, m), dtype=bool)
-    step = max(1, 2_000_000 // (m * m * 3))
-    for s in range(0, n, step):
-        p = pos[s:s + step]
-        d = p[:, :, None, :] - p[:, None, :, :]
-        d -= np.rint(d)
-        d2 = np.einsum("...i,ij,...j->...", d, metric, d)
-        # an image is dropped when an earlier image of the same site is on it
-        keep[s:s + step] = ~((d2 < MERGE_TOL ** 2) & earlier).any(-1)
+    d = pos - frac[:, None, :]
+    d -= np.rint(d)
+    stab = np.einsum("...i,ij,...j->...", d, cell @ cell.T, d) < MERGE_TOL ** 2  # (n, m)
+    special = np.nonzero(stab.sum(1) > 1)[0]
+    if len(special) == 0:  # all sites on general positions
+        return _wrap(pos.reshape(n * m, 3)), np.repeat(np.arange(n), m)
+    keep = np.ones((n, m), dtype=bool)
+    first = np.arange(m)
+    for i in special:
+        keep[i] = group.table[:, stab[i]].min(1) == first
     site, image = np.nonzero(keep)
     return _wrap(pos[site, image]), site
 
@@ -788,8 +803,8 @@ def _crystal_from_block(block, source: str) -> Crystal:
 
     candidates, hm, how = _symmetry(block, alpha, gamma)
     best = None
-    for rot, tran, completed, setting in candidates:
-        pos, site = _expand(frac, cell, rot, tran, inside)
+    for group, setting in candidates:
+        pos, site = _expand(frac, cell, group, inside)
         if best is not None:
             # only a space-group name with two origin choices: take the
             # setting that puts more atoms on special positions, then the one
@@ -798,7 +813,7 @@ def _crystal_from_block(block, source: str) -> Crystal:
                 continue
             if len(pos) == len(best[0]) and _min_distance(pos, cell) <= _min_distance(best[0], cell):
                 continue
-        best = (pos, site, setting, completed, len(rot))
+        best = (pos, site, setting, group.completed, len(group.rot))
     pos, site, setting, completed, nops = best
 
     labels = np.array(labels)
@@ -902,11 +917,10 @@ def _oxidation_numbers(block) -> dict[str, float]:
 # --------------------------------------------------------------------------
 
 def _read_object(obj) -> list[Crystal]:
-    module = type(obj).__module__ or ""
-    if module.startswith("pymatgen"):
-        return [_from_pymatgen(obj, "", "")]
-    if module.startswith("ase"):
+    if hasattr(obj, "get_scaled_positions") and hasattr(obj, "pbc"):  # ase Atoms
         return [_from_ase(obj, "", "")]
+    if hasattr(obj, "sites") and hasattr(obj, "composition"):  # pymatgen Structure, Molecule
+        return [_from_pymatgen(obj, "", "")]
     raise StructureError(f"cannot read an object of type {type(obj).__name__}")
 
 

@@ -677,7 +677,7 @@ def test_mutated_cif(pos, char):
 def test_iter_structure_files(tmp_path):
     names = ["b.cif", "a.mcif", "sub/POSCAR", "sub/CONTCAR_2", "sub/x.vasp", "sub/y.poscar",
              "sub/deeper/z.xyz", "w.extxyz", "s.json", "g.cif.gz", "README.md", "notes.txt",
-             ".hidden.cif", ".git/x.cif", "sub/README", "A.CIF"]
+             ".hidden.cif", ".git/x.cif", "sub/README", "README.json", "A.CIF"]
     for name in names:
         p = tmp_path / name
         p.parent.mkdir(parents=True, exist_ok=True)
