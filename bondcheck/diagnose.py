@@ -74,8 +74,7 @@ def diagnose(crystal, contacts, sites, c, fragile_sites, anions=None, valence=No
     case.components = anion_components(crystal, contacts, c)
     partial = crystal.occupancy < 0.999
     if partial.any():
-        n_sites = len({int(s) for s in sites.site[partial]})
-        out.append(F.OccupancyAverage(n=n_sites, evidence={"electrons_per_cell": round(c.electrons, 3)}))
+        out.append(_occupancy(case, partial))
 
     if c.closure.closes:
         out.extend(_explanations(case))
@@ -105,6 +104,38 @@ def diagnose(crystal, contacts, sites, c, fragile_sites, anions=None, valence=No
     out = found + out
     out.extend(_cutoff_range(case, MISMATCH))
     return MISMATCH, out, case.components
+
+
+def _occupancy(case: Case, partial: np.ndarray) -> F.Finding:
+    """Occupancy-weighted count: the smallest supercell an ordered model needs,
+    and whether ordering could close an open count."""
+    cr, c = case.crystal, case.count
+    n_sites = len({int(s) for s in case.sites.site[partial]})
+    per_site_el = {}
+    for k in range(cr.natoms):
+        key = (int(case.sites.site[k]), int(cr.numbers[k]))
+        per_site_el[key] = per_site_el.get(key, 0.0) + float(cr.occupancy[k])
+    n_super = None
+    for n in range(1, 25):
+        if all(abs(v * n - round(v * n)) < 0.02 for v in per_site_el.values()):
+            n_super = n
+            break
+    imbalance = c.residual * c.n_anion
+    b = case.contacts.bonded
+    bi, bj = case.contacts.i[b][c.aa_bond], case.contacts.j[b][c.aa_bond]
+    partial_aa = bool(np.any(partial[bi] | partial[bj]))
+    if c.closure.closes:
+        ordered = "the averaged count closes"
+    elif partial_aa:
+        ordered = ("ordering keeps the electron total; it could close the count only by changing the bonds "
+                   "between partly occupied anion sites")
+    else:
+        ordered = f"no ordered arrangement can close it: the electron total is off by {imbalance:+.2f} per cell"
+    if n_super:
+        ordered += f" (an ordered model needs at least a {n_super}-fold supercell)"
+    return F.OccupancyAverage(n=n_sites, ordered=ordered,
+                              evidence={"electrons_per_cell": round(c.electrons, 3), "supercell_for_ordering": n_super,
+                                        "electron_imbalance_per_cell": round(imbalance, 3)})
 
 
 # ---------------------------------------------------------------------------
@@ -398,9 +429,11 @@ def _oxidation_states(case: Case) -> list[F.Finding]:
                                 evidence={"implied_oxidation_state": round(ox, 3), "known_states": sorted(known)})]
 
 
-def _recount(case: Case, crystal: Crystal, sites: Sites) -> Count | None:
+def _recount(case: Case, crystal: Crystal, sites: Sites, contacts: Contacts | None = None) -> Count | None:
+    """Count a variant of the structure. A neighbour in the periodic table has
+    nearly the same radius, so an element swap reuses the contacts."""
     try:
-        contacts = find_contacts(crystal, case.criterion)
+        contacts = contacts if contacts is not None else find_contacts(crystal, case.criterion)
         return count(crystal, contacts, sites, case.anions, case.valence)
     except Exception:  # a swapped structure that cannot be counted is no candidate
         return None
@@ -433,13 +466,17 @@ def _swaps(case: Case) -> list[F.Finding]:
         return []
     syms = elements.symbols()
     hits, mixes = [], []
+    # Electrons in excess call for a lighter neighbour, missing ones for a heavier.
+    direction = -1 if c.residual > 0 else 1
     for g, (s, z) in enumerate(c.groups):
         atoms = c.group_of == g
         for t in _swap_targets(z):
+            if (t - z) != direction:
+                continue
             nums = cr.numbers.copy()
             nums[atoms] = t
             alt = replace(cr, numbers=nums)
-            cc = _recount(case, alt, sites)
+            cc = _recount(case, alt, sites, case.contacts)
             if cc is not None and cc.closure.closes and cc.closure.cost < 1:
                 hits.append((cc.closure.cost, g, z, t))
             elif cc is not None:

@@ -166,7 +166,7 @@ class MixedValence(Finding):
 @register
 class OccupancyAverage(Finding):
     slug = "partial-occupancy"
-    template = "the count uses occupancy-weighted averages over {n} partly occupied or mixed sites"
+    template = "the count uses occupancy-weighted averages over {n} partly occupied or mixed sites; {ordered}"
     title = "Counted over partial occupancies"
     meaning = "Partly occupied and mixed sites enter the count with their occupancies as weights, so every number is an average."
     fires_when = "Any site has an occupancy below one."

@@ -50,6 +50,8 @@ def render_one(r) -> str:
         lines.append(f"     predicted anion-anion bonds AA = 8 - VEC_A = {_f(r.aa_predicted, 3)} (with CC = 0)")
         lines.append(f"     observed  AA = {_f(r.aa_observed, 3)}   CC (electrons in cation-cation bonds) = {_f(r.cc_observed, 3)}")
         lines.append(f"     residual = VEC_A - 8 + AA - CC = {_f(r.residual, 3)} electrons per anion")
+    if getattr(r, "polyanion", ""):
+        lines.append(f"   anion substructure: {r.polyanion}")
     headers = ["site", "el", "wyck", "occ", "role", "bonds", "coord", "charge", "nearest", "last in", "first out", "gap"]
     rows = []
     for s in r.sites:
@@ -72,7 +74,7 @@ def render_one(r) -> str:
     lines.append("   sites (bonds: anion-anion for anions, cation-cation for cations; ratios d/(r_i+r_j); * count fragile):")
     lines.extend("     " + x for x in _table(headers, rows))
     if r.findings:
-        lines.append("   findings:")
+        lines.append("   findings (most likely cause first; 'bondcheck explain SLUG' says more):")
         for f in r.findings:
             d = f.to_dict() if hasattr(f, "to_dict") else f
             where = f" ({', '.join(d['sites'])})" if d["sites"] else ""
