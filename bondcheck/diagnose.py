@@ -91,11 +91,16 @@ def diagnose(crystal, contacts, sites, c, fragile_sites, anions=None, valence=No
 
     found: list[F.Finding] = []
     found += clusters
-    found += _metallic(case)
+    metallic = _metallic(case)
+    found += metallic
     found += _hypervalent(case)
-    found += _oxidation_states(case)
-    found += _swaps(case)
-    found += _missing(case)
+    if not metallic:
+        # Oxidation states, swapped elements and missing atoms mean little
+        # in a metal or an intermetallic, where the count is not expected to close.
+        found += _polar_intermetallic(case)
+        found += _oxidation_states(case)
+        found += _swaps(case)
+        found += _missing(case)
     if c.residual > 0:
         found.append(F.ElectronExcess(rank=0.2, e=_fmt(round(c.residual, 3)), evidence={"residual": round(c.residual, 3)}))
     else:
@@ -328,8 +333,12 @@ def _metallic(case: Case) -> list[F.Finding]:
     if coord.size and float(np.mean(coord)) >= 6:
         return [F.Metallic(rank=0.7, why=f"anions have {float(np.mean(coord)):.1f} anion neighbours on average: a close-packed metallic arrangement", evidence=ev)]
     groups = {elements.table()[elements.symbols()[k]]["group"] for k in np.unique(cr.numbers[an])}
-    if max(groups) <= 14 and c.residual > 0:
-        return [F.Metallic(rank=0.5, why="the anions are group 13-14 elements with electrons left over: likely a polar intermetallic", evidence=ev)]
+    syms = elements.symbols()
+    w_d = float(np.sum(cr.occupancy[[k for k in np.flatnonzero(~an) if elements.block(syms[cr.numbers[k]]) == "d"]]))
+    if max(groups) <= 14 and c.residual > 0 and w_d > 0:
+        return [F.Metallic(rank=0.7, why="group 13-14 anions with transition metals and electrons left over: an intermetallic", evidence=ev)]
+    if c.n_anion and w_d / c.n_anion >= 2:
+        return [F.Metallic(rank=0.7, why=f"metal-rich: {w_d / c.n_anion:.2g} transition-metal atoms per anion, bonded among themselves beyond what the count resolves", evidence=ev)]
     # Many near-equidistant anion neighbours without a gap.
     gaps = []
     for s in np.unique(case.sites.site[an]):
@@ -338,6 +347,17 @@ def _metallic(case: Case) -> list[F.Finding]:
             gaps.append(k)
     if gaps and c.residual > 0:
         return [F.Metallic(rank=0.45, why=f"{len(gaps)} anion site(s) with five or more anion neighbours: delocalised bonding", evidence=ev)]
+    return []
+
+
+def _polar_intermetallic(case: Case) -> list[F.Finding]:
+    """Group 13-14 anions with electrons left over but no transition metal: a
+    Zintl phase gone metallic, or a mistyped site; the probes still run."""
+    c, cr = case.count, case.crystal
+    groups = {elements.table()[elements.symbols()[k]]["group"] for k in np.unique(cr.numbers[c.role])}
+    if max(groups) <= 14 and c.residual > 0:
+        return [F.Metallic(rank=0.5, why="the anions are group 13-14 elements with electrons left over: possibly a polar intermetallic",
+                           evidence={"vec_anion": round(c.vec_anion, 3)})]
     return []
 
 
@@ -548,7 +568,8 @@ def _missing(case: Case) -> list[F.Finding]:
     anion_syms = [s for s in present if s in c.anions]
     if e_formula < 0:
         short = -e_formula
-        if "H" not in present and set(anion_syms) & {"O", "N", "C"}:
+        on = sum(float(np.sum(cr.occupancy[cr.numbers == elements.numbers()[el]])) for el in ("O", "N") if el in anion_syms)
+        if "H" not in present and on and short <= 2 * on / z_cell + 1e-6:
             n_h = short
             if abs(n_h - round(n_h)) < 0.05:
                 per = f"{n_h / (c.n_anion / z_cell):.2g} per anion"

@@ -186,7 +186,7 @@ class Metallic(Finding):
         "Octets cannot form: too few valence electrons per anion (VEC below 4) or many near-equidistant "
         "neighbours without a gap. The electron count does not apply in the 8-N sense; that is expected for metals and intermetallics."
     )
-    fires_when = "VEC per anion is below 4, no element can take the anion role, or anion sites have six or more equidistant homoatomic neighbours."
+    fires_when = "VEC per anion is below 4, no element can take the anion role, anion sites have six or more homoatomic neighbours, group 13-14 anions have electrons left over, or there are two or more transition-metal atoms per anion."
     next_steps = "Nothing is wrong by itself; compare with known intermetallics of the same structure type."
 
 
@@ -335,6 +335,6 @@ class MissingHydrogen(Finding):
     severity = "warning"
     template = "{n} H per formula unit ({per}) would close the count; the file has no hydrogen"
     title = "Possibly missing hydrogen"
-    meaning = "O, N or C atoms are electron-short by whole electrons and the model has no H: hydroxide, water or amine hydrogens were probably not located."
-    fires_when = "The residual is negative, the short atoms are O, N or C, and no H is in the file."
+    meaning = "O or N atoms are electron-short by whole electrons and the model has no H: hydroxide, water or amine hydrogens were probably not located."
+    fires_when = "The residual is negative by a whole number of electrons per formula unit, at most two per O or N atom, the anions include O or N, and no H is in the file."
     next_steps = "Locate H in a difference map or place it geometrically; check hydrogen-bond distances between O atoms."
