@@ -671,15 +671,36 @@ def _symmetry(block, alpha: float, gamma: float):
         name = hm
     settings = []
     for prefer in ("2", "1"):
-        try:
-            sg = gemmi.find_spacegroup_by_name(name, alpha, gamma, prefer)
-        except (RuntimeError, ValueError):
-            sg = None
+        sg = _find_spacegroup(name, alpha, gamma, prefer)
         if sg is not None and sg.xhm() not in settings:
             settings.append(sg.xhm())
     if not settings:
         raise StructureError(f"unknown space group {name!r} and no symmetry operators")
     return [(_group_from_spacegroup(x), x) for x in settings], hm, how
+
+
+_ORIGIN_SUFFIX = re.compile(r"[\s:]*(?:\b([SZ])|origin\s*(?:choice\s*)?([12]))\s*$", re.IGNORECASE)
+
+
+def _find_spacegroup(name: str, alpha: float, gamma: float, prefer: str):
+    """gemmi's table entry for a space-group name, or None.
+
+    Besides what gemmi understands, subscripts written with '_' ('P2_1/c')
+    and the origin suffixes S (first origin) and Z (second origin, at the
+    centre of inversion) are accepted.
+    """
+    m = _ORIGIN_SUFFIX.search(name)
+    if m:
+        choice = m.group(2) or ("1" if m.group(1).upper() == "S" else "2")
+        name = name[:m.start()].strip() + ":" + choice
+    for candidate in (name, name.replace("_", "")):
+        try:
+            sg = gemmi.find_spacegroup_by_name(candidate, alpha, gamma, prefer)
+        except (RuntimeError, ValueError):
+            sg = None
+        if sg is not None:
+            return sg
+    return None
 
 
 # ---- symmetry expansion ---------------------------------------------------
@@ -967,8 +988,10 @@ def _from_ase(atoms, source: str, name: str, fmt: str = "ase") -> Crystal:
         cell = np.array(atoms.cell, dtype=np.float64)
     except Exception as exc:
         raise StructureError(f"not a usable ase Atoms object: {_one_line(exc, 100)}") from None
-    if not pbc.all() or abs(np.linalg.det(cell)) < 1e-8:
+    if not pbc.all():
         raise StructureError(f"no periodic cell (periodic in {int(pbc.sum())} of 3 directions)")
+    if abs(np.linalg.det(cell)) < 1e-8:
+        raise StructureError("no periodic cell (zero cell volume)")
     if len(atoms) == 0:
         raise StructureError("no atoms")
     numbers = np.array(atoms.numbers, dtype=np.int64)

@@ -365,6 +365,19 @@ def test_origin_choice_from_name_alone(xyz, setting):
     assert c.meta["setting"] == setting
 
 
+@pytest.mark.parametrize("name, n_si", [("F d -3 m Z", 8), ("F d -3 m S", 16), ("F d -3 m :2", 8)])
+def test_origin_suffixes(name, n_si):
+    # Si at 1/8,1/8,1/8 is 8a in origin choice 2 (Z) and 16c/16d-like in origin choice 1 (S)
+    c = one(cif_text("Si1 Si 0.125 0.125 0.125", symmetry=f"_symmetry_space_group_name_H-M '{name}'",
+                     cell=(5.43, 5.43, 5.43, 90, 90, 90)))
+    assert c.natoms == n_si
+
+
+def test_subscripts_with_underscore():
+    c = one(cif_text("Fe1 Fe 0.1 0.2 0.3", symmetry="_symmetry_space_group_name_H-M 'P2_1/c'"))
+    assert c.natoms == 4 and c.meta["setting"] == "P 1 21/c 1"
+
+
 def test_rhombohedral_settings_from_name():
     # Bi, A7 type: R-3m, 6c in hexagonal axes, 2c in rhombohedral axes
     hexa = one(cif_text("Bi1 Bi 0 0 0.2339", symmetry="_symmetry_space_group_name_H-M 'R -3 m'",
