@@ -50,7 +50,7 @@ def build_parser() -> argparse.ArgumentParser:
 # Further subcommands live in bondcheck/commands/<name>.py, each with
 # register(subparsers) (adding a parser whose defaults set run=<function>)
 # and a run(args) -> exit status. Keep those modules light to import.
-COMMANDS = ("scan", "summary", "report", "baseline")
+COMMANDS = ("scan", "summary", "report", "baseline", "gate")
 
 
 def _command_modules():
