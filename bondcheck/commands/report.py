@@ -9,6 +9,7 @@ hand (see --plots).
 """
 from __future__ import annotations
 
+import os
 import sys
 
 RESULT_SUFFIXES = (".jsonl", ".ndjson", ".csv", ".parquet")
@@ -32,6 +33,7 @@ def register(subparsers) -> None:
         "file is at hand; all = also consistent result rows; none = no figures (default auto)",
     )
     p.add_argument("--max-plots", type=int, default=100, metavar="N", help="at most N entries with figures, mismatches first (default 100)")
+    p.add_argument("--jobs", type=int, default=0, metavar="N", help="worker processes drawing figures (default: all cores)")
     p.add_argument("--anions", help="comma-separated anion elements for the structures checked here")
     p.add_argument("--valence", action="append", metavar="El=n", help="override valence electrons, e.g. Eu=2 (repeatable)")
     p.add_argument("--block", help="only this data block of multi-block CIFs")
@@ -165,6 +167,36 @@ def _split_source(path: str) -> tuple[str, str | None]:
     return base, block or None
 
 
+PARALLEL_FROM = 6  # figures to draw before worker processes pay off
+
+
+def figure_job(job) -> tuple[dict | None, object | None]:
+    """Check one structure and draw its figures (in a worker process).
+    job = (entry number, crystal or None, path, block, options); returns the
+    fresh result row and the Detail with its figures (result dropped), or
+    (None, None) when the structure cannot be read or checked."""
+    from ..read import read
+    from ..record import StructureError
+    from ..render import plots
+
+    n, crystal, path, block, opts = job
+    if crystal is None:
+        try:
+            found = read(path, block=block)
+        except StructureError:
+            return None, None
+        if len(found) != 1:
+            return None, None
+        crystal = found[0]
+    det = plots.collect(crystal, opts)
+    row = det.result.to_dict()
+    if row.get("status") != "ok":
+        return row, None
+    det.figures = plots.render_figures(det, f"e{n + 1}")
+    det.result = None
+    return row, det
+
+
 def run(args) -> int:
     from pathlib import Path
 
@@ -175,7 +207,6 @@ def run(args) -> int:
     from ..read import read
     from ..record import StructureError
     from ..render import html as H
-    from ..render import plots
 
     try:
         valence = _valence(args.valence)
@@ -245,33 +276,46 @@ def run(args) -> int:
 
     wanted = sorted((n for n, it in enumerate(items) if wants(it)), key=priority)
     chosen = set(wanted[: args.max_plots])
+    # Figures: in worker processes when there are several to draw.
+    jobs = []
+    for n in sorted(chosen):
+        row, cr, _ = items[n]
+        if cr is not None:
+            jobs.append((n, cr, None, None, opts))
+        else:
+            path, block = _split_source(str(row.get("path")))
+            jobs.append((n, None, path, block, opts))
+    drawn: dict[int, tuple] = {}
+    n_jobs = max(1, min(args.jobs or os.cpu_count() or 1, len(jobs)))
+    if n_jobs > 1 and len(jobs) >= PARALLEL_FROM:
+        from concurrent.futures import ProcessPoolExecutor
+
+        with ProcessPoolExecutor(max_workers=n_jobs) as pool:
+            for n, out in zip((j[0] for j in jobs), pool.map(figure_job, jobs, chunksize=2)):
+                drawn[n] = out
+    else:
+        for job in jobs:
+            drawn[job[0]] = figure_job(job)
+
+    from ..api import check_crystal
+
     entries = []
     for n, (row, cr, direct) in enumerate(items):
+        fresh, det = drawn.get(n, (None, None))
         if cr is not None:
-            if n in chosen:
-                det = plots.collect(cr, opts)
-                entries.append(H.Entry(det.result.to_dict(), det))
-            else:
-                from ..api import check_crystal
-
-                note = "" if args.plots == "none" else f"Figures left out: --max-plots {args.max_plots} reached."
-                entries.append(H.Entry(check_crystal(cr, opts).to_dict(), None, note))
-            continue
-        if n in chosen:
-            path, block = _split_source(str(row.get("path")))
-            try:
-                found = read(path, block=block)
-                det = plots.collect(found[0], opts) if len(found) == 1 else None
-            except StructureError:
-                det = None
             note = ""
-            if det is not None:
-                note = "Figures recomputed from the structure file with this report's settings."
-                if det.result.verdict != row.get("verdict"):
-                    note += f" With these settings the verdict is {det.result.verdict}, not {row.get('verdict')}."
-            entries.append(H.Entry(row, det, note))
-        else:
-            entries.append(H.Entry(row, None))
+            if fresh is None:
+                fresh = check_crystal(cr, opts).to_dict()
+                if args.plots != "none" and fresh.get("status") == "ok":
+                    note = f"Figures left out: --max-plots {args.max_plots} reached."
+            entries.append(H.Entry(fresh, det, note))
+            continue
+        note = ""
+        if det is not None:
+            note = "Figures recomputed from the structure file with this report's settings."
+            if fresh.get("verdict") != row.get("verdict"):
+                note += f" With these settings the verdict is {fresh.get('verdict')}, not {row.get('verdict')}."
+        entries.append(H.Entry(row, det, note))
     if args.title:
         title = args.title
     elif len(args.inputs) == 1:

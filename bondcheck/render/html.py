@@ -340,6 +340,8 @@ def _count_steps(r: dict, det) -> str:
         f"<li>Observed: AA = <b>{_f(aao)}</b> anion\u2013anion bonds per anion; CC = <b>{_f(cc)}</b> electrons per anion "
         "in cation\u2013cation bonds.</li>"
     )
+    if r.get("polyanion"):
+        out.append(f"<li>Anion substructure: {esc(r['polyanion'])}.</li>")
     out.append(
         f"<li>Residual = VEC \u2212 {shell_s} + AA \u2212 CC = {_f(vec)} \u2212 {shell_s} + {_f(aao)} \u2212 {_f(cc)} = "
         f"<b>{_f(res)}</b> electrons per anion"
@@ -357,7 +359,7 @@ def _closure(r: dict, det) -> str:
     v = _verdict_key(r)
     if det is not None and det.kept is not None and det.closes:
         apf = r.get("anions_per_formula")
-        kept = det.kept
+        kept = [k for k in det.kept if abs(k.per_atom) > 1e-9]
         total = sum(k.per_formula for k in kept)
         rows = "".join(
             f"<tr><td>{esc(k.label)}</td><td>{esc(k.element)}</td><td class=\"num\">{_f(k.per_atom)}</td><td>{esc(k.what)}</td>"
@@ -372,6 +374,8 @@ def _closure(r: dict, det) -> str:
                 '<th scope="col" class="num">atoms per formula</th><th scope="col" class="num">per formula</th></tr></thead>'
                 f"<tbody>{rows}</tbody></table>"
             )
+        else:
+            parts.append("<p>No electrons stay on the cations.</p>")
         pi = det.pi_per_formula
         if pi > 1e-9:
             parts.append(f"<p>\u03c0 bonds between anions take {_f(pi)} electrons per formula.</p>")
@@ -491,8 +495,7 @@ def _findings_list(r: dict) -> str:
 def _figures(det, anchor: str) -> str:
     from . import plots
 
-    contact = plots.contact_plot(det)
-    picture = plots.substructure_plot(det)
+    contact, picture = det.figures or plots.render_figures(det, anchor)
     has_role = det.role is not None
     return "\n".join(
         [
@@ -536,7 +539,7 @@ th,td{border-bottom:1px solid var(--line);padding:.2rem .5rem;text-align:left;ve
 td.num,th.num{text-align:right;font-variant-numeric:tabular-nums}
 .sites td:nth-child(n+4),.entries td:nth-child(1),.entries td:nth-child(n+7){text-align:right;font-variant-numeric:tabular-nums}
 .scroll{overflow-x:auto}
-.counts{display:flex;flex-wrap:wrap;gap:2rem}
+.counts{display:flex;flex-wrap:wrap;gap:2rem;align-items:flex-start}
 .entries th button{font:inherit;font-weight:bold;background:none;border:0;padding:0;cursor:pointer;color:inherit;text-align:left}
 .entries th[aria-sort=ascending] button::after{content:" \\25B2"}.entries th[aria-sort=descending] button::after{content:" \\25BC"}
 .entries tbody tr:nth-child(even){background:var(--bg-alt)}
@@ -550,6 +553,7 @@ td.num,th.num{text-align:right;font-variant-numeric:tabular-nums}
 .evidence{margin:.2rem 0 .2rem 1rem;font-size:.85rem;color:var(--muted)}dl.evidence{display:grid;grid-template-columns:max-content 1fr;gap:0 .8rem}dl.evidence dd{margin:0}
 details{margin:.2rem 0 .2rem 1rem;font-size:.88rem}
 .figures{display:flex;flex-wrap:wrap;gap:1rem;align-items:flex-start}
+svg.plot text{font-family:"DejaVu Sans",Arial,Helvetica,sans-serif}
 figure{margin:.5rem 0;max-width:100%}figure svg{max-width:100%;height:auto;display:block}figcaption{font-size:.82rem;color:var(--muted);max-width:52rem}
 .note{font-style:italic;color:var(--muted)}
 footer.page{border-top:2px solid var(--line);margin-top:2rem;font-size:.88rem;color:var(--muted)}

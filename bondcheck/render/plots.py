@@ -132,6 +132,12 @@ class Detail:
     pi_per_formula: float = 0.0
     closes: bool | None = None
     formula_units: float = 1.0
+    figures: tuple[str, str] | None = None  # (contact plot, substructure picture) once drawn
+
+
+def render_figures(det: Detail, prefix: str) -> tuple[str, str]:
+    """Both figures of a structure as SVG text, ids prefixed with `prefix`."""
+    return contact_plot(det, f"{prefix}c"), substructure_plot(det, f"{prefix}p")
 
 
 def _label(crystal, k: int, syms) -> str:
@@ -222,9 +228,12 @@ def _site_contacts(crystal, contacts, c, k: int, det: Detail) -> SiteContacts:
         times = 2 if other == k else 1
         kind = _kind(role, k, other, bool(contacts.ionic_pair[idx]))
         ratio = float(contacts.ratio[idx])
-        key = (round(ratio, 3), kind, bool(contacts.bonded[idx]), det.site_labels[other])
+        # Equal contacts (to 0.01 in ratio, finer than the plot shows) make one point.
+        key = (round(ratio, 2), kind, bool(contacts.bonded[idx]), det.site_labels[other])
         if key in rows:
             rows[key].n += times
+            if ratio < rows[key].ratio:
+                rows[key].ratio, rows[key].d = ratio, float(contacts.d[idx])
         else:
             rows[key] = Contact(
                 ratio=ratio,
@@ -278,6 +287,13 @@ def _num(x: float) -> str:
 _FIG_COUNTER = itertools.count(1)
 
 
+_NUMBER = re.compile(r"(-?\d+\.\d{2})\d+")
+
+
+def _round_numbers(text: str) -> str:
+    return " ".join(_NUMBER.sub(r"\1", text).split())
+
+
 def _svg_text(fig, prefix: str | None = None) -> str:
     """The figure as inline SVG: no XML prolog, DOCTYPE, metadata or namespace
     URIs (HTML parses inline SVG without them), ids prefixed so that several
@@ -292,6 +308,9 @@ def _svg_text(fig, prefix: str | None = None) -> str:
     s = re.sub(r"<metadata>.*?</metadata>\s*", "", s, flags=re.S)
     s = re.sub(r'\s+xmlns(:\w+)?="[^"]*"', "", s)
     s = s.replace(' target="_blank"', "").replace("<a xlink:href=", "<a href=")
+    # Smaller: the page's CSS sets the font; coordinates to 0.01 pt.
+    s = re.sub(r"font-family: [^;\"]*;?\s*", "", s)
+    s = re.sub(r'\b(d|x|y|points)="([^"]*)"', lambda m: f'{m.group(1)}="{_round_numbers(m.group(2))}"', s)
     prefix = prefix or f"f{next(_FIG_COUNTER)}"
     ids = set(re.findall(r'\bid="([^"]+)"', s))
     if ids:
@@ -331,7 +350,7 @@ def _axes_box(fig, ax) -> dict:
 # Contact plot
 
 
-def contact_plot(det: Detail) -> str:
+def contact_plot(det: Detail, prefix: str | None = None) -> str:
     """Per site, every neighbour's ratio d/(r_i + r_j); the bond criterion as
     lines; counted contacts filled, uncounted hollow."""
     import matplotlib
@@ -342,20 +361,30 @@ def contact_plot(det: Detail) -> str:
 
     sites = det.site_contacts
     ns = max(1, len(sites))
-    width = min(10.0, max(2.6, 0.9 + 0.55 * ns))
+    width = min(10.0, max(3.4, 0.9 + 0.55 * ns))
     offsets = {"anion-anion": -0.22, "cation-anion": 0.0, "cation-cation": 0.22, "electropositive": 0.22, "contact": 0.0}
     with plt.rc_context(_RC):
         rotate = ns > 14
         fig, ax = _figure(plt, width + 2.9, 3.8 + (0.5 if rotate else 0.0), 0.75, 2.9, 0.85 + (0.5 if rotate else 0.0), 0.15)
         groups: dict[tuple[str, bool], tuple[list, list]] = {}
+        # "xn" labels go right of their marker, or left when a label at the
+        # same x would overlap, or are left out when both sides are taken.
+        taken: dict[tuple[float, int], list[float]] = {}
+        gap = 0.022
         for x, sc in enumerate(sites):
             for ct in sc.contacts:
                 xx = x + offsets[ct.kind]
                 xs, ys = groups.setdefault((ct.kind, ct.bonded), ([], []))
                 xs.append(xx)
                 ys.append(ct.ratio)
-                if ct.n > 1:
-                    ax.annotate(f"\u00d7{ct.n}", (xx, ct.ratio), xytext=(5, -3), textcoords="offset points", fontsize=6.5, color="#333333")
+                if ct.n < 2:
+                    continue
+                for side, dx, ha in ((1, 5, "left"), (-1, -5, "right")):
+                    ys_side = taken.setdefault((round(xx, 2), side), [])
+                    if all(abs(ct.ratio - y) > gap for y in ys_side):
+                        ys_side.append(ct.ratio)
+                        ax.annotate(f"\u00d7{ct.n}", (xx, ct.ratio), xytext=(dx, -3), textcoords="offset points", fontsize=6.5, color="#333333", ha=ha)
+                        break
         used = {kind for kind, _ in groups}
         for (kind, bonded), (xs, ys) in sorted(groups.items()):
             label, marker, colour = KINDS[kind]
@@ -396,7 +425,7 @@ def contact_plot(det: Detail) -> str:
         for y, style, text in lines:
             handles.append(Line2D([], [], color="#444444", linestyle=style, linewidth=0.9, label=text))
         ax.legend(handles=handles, loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False, borderaxespad=0)
-        return _svg_text(fig)
+        return _svg_text(fig, prefix)
 
 
 # --------------------------------------------------------------------------
@@ -443,7 +472,7 @@ def _view(det: Detail, bonds) -> tuple[np.ndarray, np.ndarray, np.ndarray, str]:
     return nrm, ex, ey, f"looking down {names[axis]}* (onto the {plane} plane)"
 
 
-def substructure_plot(det: Detail) -> str:
+def substructure_plot(det: Detail, prefix: str | None = None) -> str:
     """The anion substructure projected onto a cell face: anion-anion bonds
     drawn, anions coloured by element, cations as small hollow points,
     cation-cation bonds dashed, the cell outlined."""
@@ -485,10 +514,14 @@ def substructure_plot(det: Detail) -> str:
         ):
             segs = []
             for i, j, shift in bonds:
-                p1 = det.cart[j] + np.asarray(shift, dtype=float) @ cell
-                segs.append(proj(np.array([det.cart[i], p1])))
+                sh = np.asarray(shift, dtype=float) @ cell
+                segs.append(proj(np.array([det.cart[i], det.cart[j] + sh])))
                 if any(shift):
-                    ghosts.append((j, p1))
+                    # A bond across the cell boundary is drawn from both atoms
+                    # in the cell, each to the other's image.
+                    segs.append(proj(np.array([det.cart[j], det.cart[i] - sh])))
+                    ghosts.append((j, det.cart[j] + sh))
+                    ghosts.append((i, det.cart[i] - sh))
             if segs:
                 ax.add_collection(LineCollection(segs, colors=col, linewidths=lw, linestyles=style, zorder=2, gid=gid))
         # Cations, and images outside the cell.
@@ -545,7 +578,7 @@ def substructure_plot(det: Detail) -> str:
             handles.append(Line2D([], [], linestyle="none", marker="o", markerfacecolor="white", markeredgecolor="#444444", label="image outside the cell"))
         handles.append(Line2D([], [], color="#9a9a9a", linewidth=0.8, label="unit cell"))
         ax.legend(handles=handles, loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False, borderaxespad=0)
-        return _svg_text(fig)
+        return _svg_text(fig, prefix)
 
 
 # --------------------------------------------------------------------------
@@ -582,7 +615,7 @@ def scatter_plot(rows: list[dict], anchors: list[str], names: list[str]) -> tupl
 
     pts = scatter_points(rows)
     with plt.rc_context(_RC):
-        fig, ax = _figure(plt, 7.0, 4.6, 0.7, 0.2, 0.6, 0.2)
+        fig, ax = _figure(plt, 9.0, 4.8, 0.7, 2.3, 0.6, 0.2)
         xs = [p["vec_anion"] for p in pts] or [4.0, 8.0]
         lo, hi = min(min(xs), 4.0) - 0.3, max(max(xs), 8.0) + 0.3
         xx = np.array([lo, hi])
@@ -606,12 +639,14 @@ def scatter_plot(rows: list[dict], anchors: list[str], names: list[str]) -> tupl
             )
             col.set_urls([f"#{anchors[p['entry']]}" for p in sel])
         ys = [p["aa_observed"] for p in pts] or [0.0, 4.0]
+        ylo, yhi = min(min(ys), 0.0), max(max(ys), 8 - lo, 1.0)
+        pad = 0.05 * (yhi - ylo)
         ax.set_xlim(lo, hi)
-        ax.set_ylim(min(min(ys), 0.0) - 0.3, max(max(ys), 8 - lo if pts else 4.0, 1.0) + 0.3)
+        ax.set_ylim(ylo - pad, yhi + pad)
         ax.set_xlabel("VEC per anion (valence electrons per anion)")
         ax.set_ylabel("observed anion\u2013anion bonds per anion")
         ax.grid(color="#e6e6e6", linewidth=0.6, zorder=0)
-        ax.legend(loc="upper right", frameon=True, framealpha=0.9)
+        ax.legend(loc="upper left", bbox_to_anchor=(1.02, 1.0), frameon=False, borderaxespad=0)
         box = _axes_box(fig, ax)
         svg = _svg_text(fig, prefix="scatter")
     # A tooltip per point: the entry's name.
