@@ -157,11 +157,19 @@ def _validate(crystal: Crystal) -> None:
 
 
 def _fragile_sites(crystal, contacts, sites, c: Count | None, options: Options, fragile) -> list[str]:
-    """Sites whose verdict-relevant bond count changes within the criterion wobble."""
-    if not fragile.any():
+    """Sites where a contact that enters the count (anion-anion, or between two
+    cations that may bond) changes within the criterion wobble."""
+    if c is None or not contacts.fragile.any():
         return []
+    role = c.role
+    f = contacts.fragile & ~contacts.ionic_pair & (role[contacts.i] == role[contacts.j])
+    if not f.any():
+        return []
+    atoms = np.zeros(crystal.natoms, dtype=bool)
+    atoms[contacts.i[f]] = True
+    atoms[contacts.j[f]] = True
     labels = []
-    for s in np.unique(sites.site[fragile]):
+    for s in np.unique(sites.site[atoms]):
         rep = int(sites.representative[s])
         labels.append(_atom_label(crystal, rep))
     return labels

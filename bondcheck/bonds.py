@@ -152,6 +152,17 @@ def find_contacts(crystal: Crystal, criterion: Criterion | None = None) -> Conta
     return Contacts(i, j, S, d, ratio, occ[i] * occ[j], bonded, fragile, ionic_pair)
 
 
+def rescaled(crystal: Crystal, contacts: Contacts, criterion: Criterion) -> Contacts:
+    """The same contacts judged by another criterion (no new neighbour search;
+    valid for criteria whose maximum ratio stays below SEARCH)."""
+    from dataclasses import replace
+
+    c = contacts
+    z = crystal.numbers
+    bonded = decide(c.ratio, z[c.i], z[c.j], c.i, c.j, crystal.natoms, c.ionic_pair, criterion)
+    return replace(c, bonded=bonded)
+
+
 def _name(crystal: Crystal, k: int) -> str:
     lab = str(crystal.labels[k]) if len(crystal.labels) else ""
     return lab or f"{elements.symbols()[int(crystal.numbers[k])]}#{k}"

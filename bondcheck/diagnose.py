@@ -12,7 +12,7 @@ import numpy as np
 
 from . import elements
 from . import findings as F
-from .bonds import Contacts, Criterion, find_contacts
+from .bonds import Contacts, Criterion, find_contacts, rescaled
 from .count import PAULING_K, Count, count, target
 from .motifs import Component, anion_components, find_clusters, wade
 from .record import Crystal
@@ -610,7 +610,7 @@ def _missing(case: Case) -> list[F.Finding]:
 # ---------------------------------------------------------------------------
 # Sensitivity to the bond criterion
 
-SCALES = (0.94, 0.96, 0.98, 1.02, 1.04, 1.06)
+SCALES = (0.94, 0.97, 1.03, 1.06)
 
 
 def _cutoff_range(case: Case, verdict: str) -> list[F.Finding]:
@@ -622,7 +622,7 @@ def _cutoff_range(case: Case, verdict: str) -> list[F.Finding]:
     for f in SCALES:
         crit = case.criterion.scaled(f)
         try:
-            contacts = find_contacts(case.crystal, crit)
+            contacts = rescaled(case.crystal, case.contacts, crit)
             cc = count(case.crystal, contacts, case.sites, case.anions, case.valence)
         except Exception:
             continue
