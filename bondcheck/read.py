@@ -411,6 +411,13 @@ _CELL_TAGS = tuple(("_cell_" + k, "_cell." + k, k.replace("_", " ")) for k in _C
 
 
 def _cif_cell(block) -> list[float]:
+    find = block.find_value
+    try:  # the usual case: six plain numbers
+        return [float(find("_cell_length_a")), float(find("_cell_length_b")),
+                float(find("_cell_length_c")), float(find("_cell_angle_alpha")),
+                float(find("_cell_angle_beta")), float(find("_cell_angle_gamma"))]
+    except (TypeError, ValueError):  # absent, '?', uncertainties, dotted tags
+        pass
     params = []
     for i, (tag, dotted, what) in enumerate(_CELL_TAGS):
         v = block.find_value(tag)
@@ -431,18 +438,20 @@ def _cif_cell(block) -> list[float]:
 def cell_matrix(a: float, b: float, c: float,
                 alpha: float, beta: float, gamma: float) -> np.ndarray:
     """Lattice vectors as rows: a along x, b in the xy plane, right handed."""
-    for name, x in (("a", a), ("b", b), ("c", c)):
-        if not (math.isfinite(x) and x > 0):
-            raise StructureError(f"bad unit cell: length {name} = {x:g} is not positive")
-    for name, x in (("alpha", alpha), ("beta", beta), ("gamma", gamma)):
-        if not (math.isfinite(x) and 0 < x < 180):
-            raise StructureError(f"impossible cell angle: {name} = {x:g} degrees")
-
-    def cos(x):
-        return 0.0 if abs(x - 90.0) < 1e-10 else math.cos(math.radians(x))
-
-    ca, cb, cg = cos(alpha), cos(beta), cos(gamma)
-    sg = 1.0 if cg == 0.0 else math.sin(math.radians(gamma))
+    if not (0 < a < math.inf and 0 < b < math.inf and 0 < c < math.inf):
+        name, x = next((k, v) for k, v in zip("abc", (a, b, c)) if not 0 < v < math.inf)
+        raise StructureError(f"bad unit cell: length {name} = {x:g} is not positive")
+    if not (0 < alpha < 180 and 0 < beta < 180 and 0 < gamma < 180):
+        name, x = next((k, v) for k, v in zip(("alpha", "beta", "gamma"), (alpha, beta, gamma))
+                       if not 0 < v < 180)
+        raise StructureError(f"impossible cell angle: {name} = {x:g} degrees")
+    # exact zeros for right angles, so that orthogonal cells come out clean
+    ca = 0.0 if alpha == 90.0 else math.cos(math.radians(alpha))
+    cb = 0.0 if beta == 90.0 else math.cos(math.radians(beta))
+    if gamma == 90.0:
+        cg, sg = 0.0, 1.0
+    else:
+        cg, sg = math.cos(math.radians(gamma)), math.sin(math.radians(gamma))
     cy = (ca - cb * cg) / sg
     cz2 = 1.0 - cb * cb - cy * cy
     if cz2 <= 1e-8:
@@ -761,6 +770,16 @@ def _min_distance(frac: np.ndarray, cell: np.ndarray) -> float:
 
 # ---- one block ------------------------------------------------------------
 
+_SITE_TAGS = ("_atom_site_fract_x", "_atom_site_fract_y", "_atom_site_fract_z", "_atom_site_label",
+              "_atom_site_type_symbol", "_atom_site_occupancy", "_atom_site_calc_flag")
+
+
+def _filled(n: int, value: float) -> np.ndarray:
+    a = np.empty(n)
+    a.fill(value)
+    return a
+
+
 def _crystal_from_block(block, source: str) -> Crystal:
     tags, values = _atom_loop(block)
     ncol = len(tags)
@@ -768,25 +787,17 @@ def _crystal_from_block(block, source: str) -> Crystal:
     if nrow == 0:
         raise StructureError("truncated CIF: the atom-site loop has no values")
     col = {t: i for i, t in enumerate(tags)}
-
-    def column(tag):
-        i = col.get(tag)
-        return None if i is None else values[i::ncol]
-
-    xs, ys, zs = (column("_atom_site_fract_" + a) for a in "xyz")
+    xs, ys, zs, labels, types, occ_raw, flags = [
+        None if i is None else values[i::ncol] for i in map(col.get, _SITE_TAGS)]
     if xs is None or ys is None or zs is None:
         if "_atom_site_cartn_x" in col:
             raise StructureError("only Cartesian atom coordinates given; fractional ones are needed")
         raise StructureError("no fractional atom coordinates (_atom_site_fract_x/y/z)")
-    labels = column("_atom_site_label")
-    types = column("_atom_site_type_symbol")
-    occ_raw = column("_atom_site_occupancy")
     if labels is None:
         if types is None:
             raise StructureError("atom sites have neither labels nor type symbols")
         labels = types
 
-    flags = column("_atom_site_calc_flag")
     if flags is not None and any(_unquote(f).lower() == "dum" for f in flags):
         # dummy atoms are not part of the structure
         rows = [i for i, f in enumerate(flags) if _unquote(f).lower() != "dum"]
@@ -859,7 +870,7 @@ def _occupancies(occ_raw: list[str] | None, nrow: int, labels: list[str]) -> np.
             v = 1.0
         if not 0.0 < v <= 1.0 + OCC_TOL:
             _check_occupancy(np.array([v]), labels[:1])
-        return np.full(nrow, min(v, 1.0))
+        return _filled(nrow, min(v, 1.0))
     occ = _floats(occ_raw)
     occ[np.isnan(occ)] = 1.0  # '?' or '.': not given
     if not (occ.min() > 0.0 and occ.max() <= 1.0 + OCC_TOL):
@@ -887,33 +898,41 @@ def _elements(block, types: list[str] | None, labels: list[str]) -> tuple[np.nda
                 raise StructureError(
                     f"cannot tell the element of site '{label}' (no _atom_site_type_symbol)")
             znum[label] = z
-        return np.array([znum[v] for v in labels], dtype=np.int64), np.full(n, np.nan)
+        return np.array([znum[v] for v in labels], dtype=np.int64), _filled(n, math.nan)
 
     table = {}
     oxidation = None
+    unknown = charged = False
     for t in set(types):
         z, q, sym = _type_species(t)
-        if z and q != q:  # no charge in the symbol: perhaps in the _atom_type loop
+        if not z:
+            unknown = True
+        elif q != q:  # no charge in the symbol: perhaps in the _atom_type loop
             if oxidation is None:
                 oxidation = _oxidation_numbers(block)
-            q = oxidation.get(sym, q)
-        table[t] = (z, q, sym)
-    if not all(v[0] for v in table.values()):
+            if sym in oxidation:
+                q = oxidation[sym]
+                charged = True
+        else:
+            charged = True
+        table[t] = (z, q)
+    if unknown:
         rows = []
         for t, label in zip(types, labels):
-            z, q, sym = table[t]
+            z, q = table[t]
             if not z:
+                sym = _type_species(t)[2]
                 if sym:
                     raise StructureError(f"unknown element symbol '{sym}' (site '{label}')")
                 z, q = species(label, False)  # type symbol '?': go by the label
                 if not z:
                     raise StructureError(f"cannot tell the element of site '{label}'")
-            rows.append((z, q, sym))
+            rows.append((z, q))
         table = dict(enumerate(rows))
         types = range(n)
     numbers = np.array([table[t][0] for t in types], dtype=np.int64)
-    if all(v[1] != v[1] for v in table.values()):
-        return numbers, np.full(n, np.nan)
+    if not charged:
+        return numbers, _filled(n, math.nan)
     return numbers, np.array([table[t][1] for t in types], dtype=np.float64)
 
 
