@@ -411,7 +411,10 @@ def contact_plot(det: Detail, prefix: str | None = None) -> str:
         ax.set_xlim(-0.6, ns - 0.4)
         ax.set_ylim(0.6, SEARCH + 0.02)
         ax.set_xticks(range(len(sites)))
-        ax.set_xticklabels([f"{s.label}\n{s.role or ''}" for s in sites], rotation=90 if rotate else 0)
+        if rotate:
+            ax.set_xticklabels([f"{s.label} ({s.role})" if s.role else s.label for s in sites], rotation=90, fontsize=6.5 if ns > 40 else 8)
+        else:
+            ax.set_xticklabels([f"{s.label}\n{s.role or ''}" for s in sites])
         ax.set_xlabel("crystallographic site (one atom of each)")
         ax.set_ylabel("d / (r\u1d62 + r\u2c7c)  (dimensionless)")
         ax.grid(axis="y", color="#e6e6e6", linewidth=0.6, zorder=0)
@@ -475,11 +478,13 @@ def _view(det: Detail, bonds) -> tuple[np.ndarray, np.ndarray, np.ndarray, str]:
 def substructure_plot(det: Detail, prefix: str | None = None) -> str:
     """The anion substructure projected onto a cell face: anion-anion bonds
     drawn, anions coloured by element, cations as small hollow points,
-    cation-cation bonds dashed, the cell outlined."""
+    cation-cation bonds dashed, the cell outlined. The plot area takes the
+    shape of the projected cell, so that nothing is stretched."""
     import matplotlib
 
     matplotlib.use("Agg", force=False)
     import matplotlib.pyplot as plt
+    from matplotlib.collections import LineCollection
     from matplotlib.lines import Line2D
 
     cell = det.cell
@@ -494,54 +499,61 @@ def substructure_plot(det: Detail, prefix: str | None = None) -> str:
     is_anion = np.ones(len(det.symbols), dtype=bool) if role is None else role
     anion_elements = list(dict.fromkeys(s for s, a in zip(det.symbols, is_anion) if a))
     colour = {el: ELEMENT_CYCLE[k % len(ELEMENT_CYCLE)] for k, el in enumerate(anion_elements)}
-    with plt.rc_context(_RC):
-        fig, ax = _figure(plt, 6.6, 4.6, 0.7, 2.1, 0.6, 0.35)
-        from matplotlib.collections import LineCollection
 
-        # Cell outline.
-        corners = np.array(list(itertools.product((0, 1), repeat=3)), dtype=float)
-        edges = [
-            proj(corners[[a, b]] @ cell)
-            for a, b in itertools.combinations(range(8), 2)
-            if np.sum(np.abs(corners[a] - corners[b])) == 1
-        ]
+    # Geometry first: cell edges, bonds (a bond across the cell boundary is
+    # drawn from both atoms in the cell, each to the other's image), images.
+    corners = np.array(list(itertools.product((0, 1), repeat=3)), dtype=float)
+    edges = [
+        proj(corners[[a, b]] @ cell) for a, b in itertools.combinations(range(8), 2) if np.sum(np.abs(corners[a] - corners[b])) == 1
+    ]
+    bond_sets = []
+    ghosts: dict[tuple, tuple[int, np.ndarray]] = {}
+    for bonds, style, col, lw, gid in (
+        (main_bonds, "-", "#222222", 1.6, "bonds-main"),
+        (det.cc_bonds, "--", OKABE_ITO["green"], 1.2, "bonds-cation-cation"),
+    ):
+        segs = []
+        for i, j, shift in bonds:
+            sh = np.asarray(shift, dtype=float) @ cell
+            segs.append(proj(np.array([det.cart[i], det.cart[j] + sh])))
+            if any(shift):
+                segs.append(proj(np.array([det.cart[j], det.cart[i] - sh])))
+                for k, q in ((j, segs[-2][1]), (i, segs[-1][1])):
+                    ghosts.setdefault((k, round(float(q[0]), 3), round(float(q[1]), 3)), (k, q))
+        bond_sets.append((segs, style, col, lw, gid))
+    atoms2d = proj(det.cart)
+    pts = [atoms2d, np.concatenate(edges)] + [np.concatenate(b[0]) for b in bond_sets if b[0]]
+    allp = np.concatenate(pts)
+    (x0, y0), (x1, y1) = allp.min(axis=0), allp.max(axis=0)
+    pad = 0.06 * max(x1 - x0, y1 - y0, 1.0)
+    x0, x1, y0, y1 = x0 - pad, x1 + pad, y0 - pad, y1 + pad
+    long_side = 4.4
+    if x1 - x0 >= y1 - y0:
+        w, h = long_side, max(1.8, long_side * (y1 - y0) / (x1 - x0))
+    else:
+        w, h = max(1.8, long_side * (x1 - x0) / (y1 - y0)), long_side
+    # Keep the data aspect: widen the shorter range when a minimum size applies.
+    sx, sy = (x1 - x0) / w, (y1 - y0) / h
+    if sx > sy:
+        c = (y0 + y1) / 2
+        y0, y1 = c - sx * h / 2, c + sx * h / 2
+    else:
+        c = (x0 + x1) / 2
+        x0, x1 = c - sy * w / 2, c + sy * w / 2
+
+    with plt.rc_context(_RC):
+        fig, ax = _figure(plt, w + 0.75 + 2.1, max(h, 2.4) + 0.6 + 0.35, 0.75, 2.1, 0.6 + max(0.0, 2.4 - h), 0.35)
         ax.add_collection(LineCollection(edges, colors="#9a9a9a", linewidths=0.8, zorder=1))
-        # Bonds, with the partner image drawn hollow where it lies outside the cell.
-        ghosts = []
-        for bonds, style, col, lw, gid in (
-            (main_bonds, "-", "#222222", 1.6, "bonds-main"),
-            (det.cc_bonds, "--", OKABE_ITO["green"], 1.2, "bonds-cation-cation"),
-        ):
-            segs = []
-            for i, j, shift in bonds:
-                sh = np.asarray(shift, dtype=float) @ cell
-                segs.append(proj(np.array([det.cart[i], det.cart[j] + sh])))
-                if any(shift):
-                    # A bond across the cell boundary is drawn from both atoms
-                    # in the cell, each to the other's image.
-                    segs.append(proj(np.array([det.cart[j], det.cart[i] - sh])))
-                    ghosts.append((j, det.cart[j] + sh))
-                    ghosts.append((i, det.cart[i] - sh))
+        for segs, style, col, lw, gid in bond_sets:
             if segs:
                 ax.add_collection(LineCollection(segs, colors=col, linewidths=lw, linestyles=style, zorder=2, gid=gid))
-        # Cations, and images outside the cell.
         cat = np.flatnonzero(~is_anion)
         if cat.size:
-            pc = proj(det.cart[cat])
-            ax.scatter(pc[:, 0], pc[:, 1], s=12, facecolors="white", edgecolors="#666666", linewidths=0.8, zorder=3)
-        seen = set()
+            ax.scatter(atoms2d[cat, 0], atoms2d[cat, 1], s=12, facecolors="white", edgecolors="#666666", linewidths=0.8, zorder=3)
         ghost_an: dict[str, list] = {}
         ghost_cat = []
-        for j, p in ghosts:
-            q = proj(p)[0]
-            key = (j, round(float(q[0]), 3), round(float(q[1]), 3))
-            if key in seen:
-                continue
-            seen.add(key)
-            if is_anion[j]:
-                ghost_an.setdefault(det.symbols[j], []).append(q)
-            else:
-                ghost_cat.append(q)
+        for k, q in ghosts.values():
+            (ghost_an.setdefault(det.symbols[k], []) if is_anion[k] else ghost_cat).append(q)
         for el, qs in ghost_an.items():
             qs = np.array(qs)
             ax.scatter(qs[:, 0], qs[:, 1], s=34, facecolors="white", edgecolors=colour[el], linewidths=1.0, zorder=3)
@@ -551,19 +563,16 @@ def substructure_plot(det: Detail, prefix: str | None = None) -> str:
         # Anions, far ones first.
         an = np.flatnonzero(is_anion)
         if an.size:
-            depth = det.cart[an] @ nrm
-            an = an[np.argsort(depth)]
-            pa = proj(det.cart[an])
-            ax.scatter(pa[:, 0], pa[:, 1], s=44, c=[colour[det.symbols[k]] for k in an], edgecolors="black", linewidths=0.6, zorder=4)
-        reps = set(det.rep_atoms)
-        for k in an:
-            if k in reps:
-                q = proj(det.cart[k])[0]
-                ax.annotate(det.labels[k], (q[0], q[1]), xytext=(4, 4), textcoords="offset points", fontsize=7, zorder=5)
-        ax.autoscale_view()
-        ax.set_aspect("equal", adjustable="datalim")
+            an = an[np.argsort(det.cart[an] @ nrm)]
+            ax.scatter(atoms2d[an, 0], atoms2d[an, 1], s=44, c=[colour[det.symbols[k]] for k in an], edgecolors="black", linewidths=0.6, zorder=4)
+        labelled = [k for k in an if k in set(det.rep_atoms)]
+        if len(labelled) <= 12:  # more labels than that only hide the picture
+            for k in labelled:
+                ax.annotate(det.labels[k], tuple(atoms2d[k]), xytext=(4, 4), textcoords="offset points", fontsize=7, zorder=5)
+        ax.set_xlim(x0, x1)
+        ax.set_ylim(y0, y1)
         ax.set_xlabel("x in the projection plane (\u00c5)")
-        ax.set_ylabel("y in the projection plane (\u00c5)")
+        ax.set_ylabel("y (\u00c5)")
         ax.set_title(view, fontsize=9)
         handles = [
             Line2D([], [], linestyle="none", marker="o", markerfacecolor=colour[el], markeredgecolor="black", label=f"{el} (anion)" if role is not None else el)
