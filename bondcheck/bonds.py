@@ -21,6 +21,7 @@ closer than OVERLAP angstrom make the structure unreadable.
 """
 from __future__ import annotations
 
+import threading
 from dataclasses import dataclass
 
 import numpy as np
@@ -68,6 +69,10 @@ class Contacts:
     bonded: np.ndarray
     fragile: np.ndarray
     ionic_pair: np.ndarray
+    # (atomic numbers, usable, per-element reference, overall reference) of
+    # the relative test, kept so that another criterion can judge the same
+    # contacts cheaply.
+    references: tuple | None = None
 
     def vectors(self, crystal: Crystal) -> np.ndarray:
         """Cartesian vector from atom i to the image of atom j."""
@@ -75,17 +80,52 @@ class Contacts:
         return fr @ crystal.cell
 
 
-_NL_CACHE: dict[float, object] = {}
+_LOCAL = threading.local()
 
 
 def _neighbour_pairs(crystal: Crystal, cutoff: float):
-    from vesin import NeighborList
+    """Unordered pairs within cutoff: vesin, one thread (the scan parallelises
+    over structures), one NeighborList object per thread reused across calls."""
+    nl = getattr(_LOCAL, "nl", None)
+    if nl is None:
+        from vesin import NeighborList
 
+        nl = _LOCAL.nl = NeighborList(cutoff=cutoff, full_list=False, n_threads=1)
+    nl.cutoff = cutoff
     cell = np.ascontiguousarray(crystal.cell, dtype=np.float64)
     pts = np.ascontiguousarray(crystal.frac @ cell, dtype=np.float64)
-    nl = NeighborList(cutoff=cutoff, full_list=False)
-    i, j, S, d = nl.compute(points=pts, box=cell, periodic=True, quantities="ijSd")
-    return i.astype(np.int64), j.astype(np.int64), S.astype(np.int64), d
+    i, j, S, d = nl.compute(points=pts, box=cell, periodic=True, quantities="ijSd", copy=False)
+    return i.astype(np.int64), j.astype(np.int64), S.astype(np.int64), d.copy()
+
+
+def _references(ratio, zi, zj, i, j, n_atoms, usable, z):
+    """Per contact, the criterion-independent references of the relative test:
+    the shorter of the two atoms' shortest contacts to each other's element,
+    and the shorter of their shortest contacts altogether."""
+    lut = np.zeros(128, dtype=np.int64)
+    zs = np.unique(z)
+    ne = zs.size
+    lut[zs] = np.arange(ne)
+    code_i, code_j = lut[zi], lut[zj]
+    ki, kj = i * ne + code_j, j * ne + code_i
+    ru = ratio[usable]
+    best = np.full(n_atoms * ne, np.inf)
+    np.minimum.at(best, ki[usable], ru)
+    np.minimum.at(best, kj[usable], ru)
+    nearest = np.full(n_atoms, np.inf)
+    np.minimum.at(nearest, i[usable], ru)
+    np.minimum.at(nearest, j[usable], ru)
+    return np.minimum(best[ki], best[kj]), np.minimum(nearest[i], nearest[j])
+
+
+def _judge(ratio, usable, ref_el, ref_all, criterion: Criterion) -> np.ndarray:
+    rel = criterion.relative
+    eps = 1e-9
+    near_el = ratio <= ref_el * rel + eps
+    near_all = ratio <= ref_all * rel + eps
+    extended = criterion.core * EXTENDED_RATIO / CORE_RATIO
+    ok = (ratio <= criterion.core) | (near_el & (ratio <= extended)) | near_all
+    return usable & (ratio <= criterion.maximum) & ok
 
 
 def decide(ratio, zi, zj, i, j, n_atoms, ionic_pair, criterion: Criterion) -> np.ndarray:
@@ -93,24 +133,8 @@ def decide(ratio, zi, zj, i, j, n_atoms, ionic_pair, criterion: Criterion) -> np
     if ratio.size == 0:
         return np.zeros(0, dtype=bool)
     usable = ~ionic_pair
-    # Shortest contact each atom has to each partner element, and overall.
-    zs, zcode = np.unique(np.concatenate([zi, zj]), return_inverse=True)
-    m = ratio.size
-    code_i, code_j = zcode[:m], zcode[m:]
-    ne = zs.size
-    best = np.full(n_atoms * ne, np.inf)
-    np.minimum.at(best, (i * ne + code_j)[usable], ratio[usable])
-    np.minimum.at(best, (j * ne + code_i)[usable], ratio[usable])
-    nearest = np.full(n_atoms, np.inf)
-    np.minimum.at(nearest, i[usable], ratio[usable])
-    np.minimum.at(nearest, j[usable], ratio[usable])
-    rel = criterion.relative
-    eps = 1e-9
-    near_el = (ratio <= best[i * ne + code_j] * rel + eps) & (ratio <= best[j * ne + code_i] * rel + eps)
-    near_all = (ratio <= nearest[i] * rel + eps) & (ratio <= nearest[j] * rel + eps)
-    extended = criterion.core * EXTENDED_RATIO / CORE_RATIO
-    ok = (ratio <= criterion.core) | (near_el & (ratio <= extended)) | near_all
-    return usable & (ratio <= criterion.maximum) & ok
+    ref_el, ref_all = _references(ratio, zi, zj, i, j, n_atoms, usable, np.concatenate([zi, zj]))
+    return _judge(ratio, usable, ref_el, ref_all, criterion)
 
 
 def find_contacts(crystal: Crystal, criterion: Criterion | None = None) -> Contacts:
@@ -145,11 +169,17 @@ def find_contacts(crystal: Crystal, criterion: Criterion | None = None) -> Conta
     ep = elements.electropositive_by_z()
     zi, zj = z[i], z[j]
     ionic_pair = ep[zi] & ep[zj]
-    bonded = decide(ratio, zi, zj, i, j, n, ionic_pair, criterion)
-    lo = decide(ratio, zi, zj, i, j, n, ionic_pair, criterion.scaled(1 - WOBBLE))
-    hi = decide(ratio, zi, zj, i, j, n, ionic_pair, criterion.scaled(1 + WOBBLE))
-    fragile = lo != hi
-    return Contacts(i, j, S, d, ratio, occ[i] * occ[j], bonded, fragile, ionic_pair)
+    refs = None
+    if ratio.size:
+        usable = ~ionic_pair
+        refs = (z, usable) + _references(ratio, zi, zj, i, j, n, usable, z)
+        bonded = _judge(ratio, *refs[1:], criterion)
+        lo = _judge(ratio, *refs[1:], criterion.scaled(1 - WOBBLE))
+        hi = _judge(ratio, *refs[1:], criterion.scaled(1 + WOBBLE))
+        fragile = lo != hi
+    else:
+        bonded = fragile = np.zeros(0, dtype=bool)
+    return Contacts(i, j, S, d, ratio, occ[i] * occ[j], bonded, fragile, ionic_pair, refs)
 
 
 def rescaled(crystal: Crystal, contacts: Contacts, criterion: Criterion) -> Contacts:
@@ -158,8 +188,12 @@ def rescaled(crystal: Crystal, contacts: Contacts, criterion: Criterion) -> Cont
     from dataclasses import replace
 
     c = contacts
-    z = crystal.numbers
-    bonded = decide(c.ratio, z[c.i], z[c.j], c.i, c.j, crystal.natoms, c.ionic_pair, criterion)
+    refs = c.references
+    if refs is not None and (refs[0] is crystal.numbers or np.array_equal(refs[0], crystal.numbers)):
+        bonded = _judge(c.ratio, *refs[1:], criterion)
+    else:
+        z = crystal.numbers
+        bonded = decide(c.ratio, z[c.i], z[c.j], c.i, c.j, crystal.natoms, c.ionic_pair, criterion)
     return replace(c, bonded=bonded)
 
 
