@@ -595,3 +595,30 @@ def test_single_structure_page(browser, reports, tmp_path):
     labels = browser.js("Array.from(document.querySelectorAll('figure.contacts svg text')).map(t => t.textContent)")
     assert any(t.startswith("Si") for t in labels) and any(t.startswith("O") for t in labels)
     assert browser.js("document.querySelectorAll('figure.contacts g[id$=\"contacts-cation-anion-bonded\"] use').length") >= 2
+
+
+def test_substructure_viewer_turns(browser, reports):
+    """The 3D view of cristobalite (COD 9017338: SiO2, Z = 4, 12 atoms in the
+    cell; common practice, no source): all atoms drawn, no anion-anion bonds
+    (every O bonds to Si only), and the arrow keys turn it."""
+    _load_clean(browser, reports["single"])
+    model = json.loads(browser.js("document.querySelector('details.viewer .viewer-box').getAttribute('data-model')"))
+    (crystal,) = read(MINERALS / "cod_9017338.cif")
+    assert len(model["atoms"]) == crystal.natoms == 12
+    assert sum(a[4] for a in model["atoms"]) == 8  # the O atoms are the anions
+    assert model["bonds"] == []
+    assert browser.js("document.querySelector('details.viewer svg')") is None, "drawn only when opened"
+    browser.js("document.querySelector('details.viewer').open = true")
+    n = browser.js("new Promise(r => setTimeout(() => r(document.querySelectorAll('details.viewer svg circle').length), 50))")
+    assert n == len(model["atoms"]) + len(model["ghosts"])
+    k = browser.js("document.querySelector('details.viewer svg circle.anion').getAttribute('data-i')")
+    first = f"document.querySelector('details.viewer svg circle[data-i=\"{k}\"]').getAttribute('cx')"
+    before = float(browser.js(first))
+    browser.js(
+        "(() => { const s = document.querySelector('details.viewer svg'); s.focus();"
+        " for (let i = 0; i < 5; i++) s.dispatchEvent(new KeyboardEvent('keydown', {key: 'ArrowRight', bubbles: true})); })()"
+    )
+    assert float(browser.js(first)) != pytest.approx(before, abs=1e-3)
+    browser.js("document.querySelector('details.viewer button[data-view=\"c\"]').click()")
+    assert float(browser.js(first)) == pytest.approx(before, abs=1e-3), "'down c' restores the first view"
+    assert browser.problems() == []

@@ -513,7 +513,25 @@ def _figures(det, anchor: str) -> str:
             )
             + "</figcaption></figure>",
             "</div>",
+            _viewer(det, anchor),
         ]
+    )
+
+
+def _viewer(det, anchor: str) -> str:
+    """A small 3D view of the same substructure, drawn by the page's script
+    when opened: drag, or use the arrow keys, to turn it."""
+    from . import plots
+
+    model = plots.substructure_model(det)
+    if model is None:
+        return ""
+    return (
+        f'<details class="viewer" id="{anchor}-3d"><summary>Turn the substructure in 3D</summary>'
+        '<div class="viewer-controls"><button type="button" data-view="a">down a</button> '
+        '<button type="button" data-view="b">down b</button> <button type="button" data-view="c">down c</button> '
+        '<span class="hint">drag, or focus the picture and use the arrow keys</span></div>'
+        f'<div class="viewer-box" data-model="{esc(json.dumps(model, separators=(",", ":")))}"></div></details>'
     )
 
 
@@ -553,6 +571,12 @@ td.num,th.num{text-align:right;font-variant-numeric:tabular-nums}
 .evidence{margin:.2rem 0 .2rem 1rem;font-size:.85rem;color:var(--muted)}dl.evidence{display:grid;grid-template-columns:max-content 1fr;gap:0 .8rem}dl.evidence dd{margin:0}
 details{margin:.2rem 0 .2rem 1rem;font-size:.88rem}
 .figures{display:flex;flex-wrap:wrap;gap:1rem;align-items:flex-start}
+details.viewer{margin:.5rem 0;font-size:.9rem}.viewer-controls{margin:.3rem 0}.viewer-controls .hint{color:var(--muted);font-size:.8rem}
+svg.turn{width:min(420px,100%);height:auto;border:1px solid var(--line);touch-action:none;cursor:grab;display:block}
+svg.turn:focus{outline:2px solid #0b5394}
+svg.turn .cell{stroke:#9a9a9a;stroke-width:.04}svg.turn .bond{stroke:#222;stroke-width:.1;stroke-linecap:round}
+svg.turn .bond.cc{stroke:#009E73;stroke-dasharray:.2 .15}svg.turn .atom{stroke:#000;stroke-width:.04}
+svg.turn .cation{stroke:#666;stroke-width:.05}svg.turn .ghost{stroke-width:.06}
 svg.plot text{font-family:"DejaVu Sans",Arial,Helvetica,sans-serif}
 figure{margin:.5rem 0;max-width:100%}figure svg{max-width:100%;height:auto;display:block}figcaption{font-size:.82rem;color:var(--muted);max-width:52rem}
 .note{font-style:italic;color:var(--muted)}
@@ -574,6 +598,111 @@ a{color:#0b5394}
 JS = r"""
 (function(){
   "use strict";
+  // The SVG namespace, as the HTML parser assigns it (no address in the page).
+  var probe = document.createElement("div");
+  probe.innerHTML = "<svg></svg>";
+  var SVGNS = probe.firstChild.namespaceURI;
+  function setupViewers(){
+    Array.prototype.forEach.call(document.querySelectorAll("details.viewer"), function(d){
+      d.addEventListener("toggle", function(){ if (d.open && !d.viewer) d.viewer = new Viewer(d); });
+    });
+  }
+  function unit(v){ var n = Math.hypot(v[0], v[1], v[2]) || 1; return [v[0]/n, v[1]/n, v[2]/n]; }
+  function cross(a, b){ return [a[1]*b[2]-a[2]*b[1], a[2]*b[0]-a[0]*b[2], a[0]*b[1]-a[1]*b[0]]; }
+  function dot(a, b){ return a[0]*b[0]+a[1]*b[1]+a[2]*b[2]; }
+  function Viewer(d){
+    var box = d.querySelector(".viewer-box");
+    var m = JSON.parse(box.getAttribute("data-model"));
+    this.m = m;
+    var cell = m.cell, o = [0, 0, 0];
+    for (var i = 0; i < 3; i++) for (var k = 0; k < 3; k++) o[k] += cell[i][k] / 2;
+    this.centre = o;
+    var corners = [];
+    for (var f = 0; f < 8; f++) {
+      var p = [0, 0, 0];
+      for (var i2 = 0; i2 < 3; i2++) if (f >> i2 & 1) for (var k2 = 0; k2 < 3; k2++) p[k2] += cell[i2][k2];
+      corners.push(p);
+    }
+    var edges = [];
+    for (var a = 0; a < 8; a++) for (var b = a + 1; b < 8; b++) { var x = a ^ b; if (x === 1 || x === 2 || x === 4) edges.push([corners[a], corners[b]]); }
+    var radius = 0;
+    m.atoms.concat(m.ghosts).forEach(function(t){ radius = Math.max(radius, Math.hypot(t[0]-o[0], t[1]-o[1], t[2]-o[2])); });
+    corners.forEach(function(t){ radius = Math.max(radius, Math.hypot(t[0]-o[0], t[1]-o[1], t[2]-o[2])); });
+    this.r = radius + 1;
+    var svg = document.createElementNS(SVGNS, "svg");
+    svg.setAttribute("viewBox", [-this.r, -this.r, 2*this.r, 2*this.r].join(" "));
+    svg.setAttribute("class", "turn");
+    svg.setAttribute("tabindex", "0");
+    svg.setAttribute("role", "img");
+    svg.setAttribute("aria-label", "anion substructure in 3D; arrow keys turn it");
+    box.appendChild(svg);
+    this.svg = svg;
+    var self = this, items = [];
+    function line(p, q, cls){ var e = document.createElementNS(SVGNS, "line"); e.setAttribute("class", cls); svg.appendChild(e); items.push({el: e, p: p, q: q}); }
+    function dotAt(t, r, cls, fill, title){
+      var e = document.createElementNS(SVGNS, "circle"); e.setAttribute("r", r); e.setAttribute("class", cls);
+      e.setAttribute("fill", fill); svg.appendChild(e);
+      if (title) { var tt = document.createElementNS(SVGNS, "title"); tt.textContent = title; e.appendChild(tt); }
+      e.setAttribute("data-i", items.length);
+      var it = {el: e, p: [t[0], t[1], t[2]]};
+      items.push(it);
+      return it;
+    }
+    edges.forEach(function(e){ line(e[0], e[1], "cell"); });
+    m.bonds.forEach(function(t){ line(t.slice(0, 3), t.slice(3, 6), t[6] === "cc" ? "bond cc" : "bond"); });
+    m.ghosts.forEach(function(t){ dotAt(t, t[4] ? 0.32 : 0.16, t[4] ? "ghost anion" : "ghost", "white").el.setAttribute("stroke", t[3]); });
+    m.atoms.forEach(function(t){ dotAt(t, t[4] ? 0.38 : 0.17, t[4] ? "atom anion" : "atom cation", t[4] ? t[3] : "white", t[5]); });
+    this.items = items;
+    this.setView("c");
+    var drag = null;
+    svg.addEventListener("pointerdown", function(e){ drag = [e.clientX, e.clientY]; svg.setPointerCapture(e.pointerId); });
+    svg.addEventListener("pointermove", function(e){
+      if (!drag) return;
+      self.turn((e.clientX - drag[0]) * 0.01, (e.clientY - drag[1]) * 0.01); drag = [e.clientX, e.clientY];
+    });
+    svg.addEventListener("pointerup", function(){ drag = null; });
+    svg.addEventListener("keydown", function(e){
+      var s = 0.1, k = {ArrowLeft: [-s, 0], ArrowRight: [s, 0], ArrowUp: [0, -s], ArrowDown: [0, s]}[e.key];
+      if (k) { self.turn(k[0], k[1]); e.preventDefault(); }
+    });
+    Array.prototype.forEach.call(d.querySelectorAll("button[data-view]"), function(b){
+      b.addEventListener("click", function(){ self.setView(b.getAttribute("data-view")); });
+    });
+  }
+  Viewer.prototype.setView = function(axis){
+    var c = this.m.cell, i = {a: 0, b: 1, c: 2}[axis];
+    var n = unit(cross(c[(i+1)%3], c[(i+2)%3]));
+    var x = c[(i+1)%3], xu = unit([x[0]-dot(x,n)*n[0], x[1]-dot(x,n)*n[1], x[2]-dot(x,n)*n[2]]);
+    this.ex = xu; this.ey = cross(n, xu); this.ez = n;
+    this.draw();
+  };
+  Viewer.prototype.turn = function(yaw, pitch){
+    function rot(u, v, t){ var c = Math.cos(t), s = Math.sin(t); return [[u[0]*c+v[0]*s, u[1]*c+v[1]*s, u[2]*c+v[2]*s], [v[0]*c-u[0]*s, v[1]*c-u[1]*s, v[2]*c-u[2]*s]]; }
+    var r = rot(this.ex, this.ez, yaw); this.ex = r[0]; this.ez = r[1];
+    r = rot(this.ey, this.ez, pitch); this.ey = r[0]; this.ez = r[1];
+    this.draw();
+  };
+  Viewer.prototype.draw = function(){
+    var o = this.centre, ex = this.ex, ey = this.ey, ez = this.ez;
+    function pr(p){ var d = [p[0]-o[0], p[1]-o[1], p[2]-o[2]]; return [dot(d, ex), -dot(d, ey), dot(d, ez)]; }
+    var order = [];
+    this.items.forEach(function(it){
+      var a = pr(it.p);
+      if (it.q) {
+        var b = pr(it.q);
+        it.el.setAttribute("x1", a[0].toFixed(3)); it.el.setAttribute("y1", a[1].toFixed(3));
+        it.el.setAttribute("x2", b[0].toFixed(3)); it.el.setAttribute("y2", b[1].toFixed(3));
+        order.push([(a[2] + b[2]) / 2 - 0.01, it.el]);
+      } else {
+        it.el.setAttribute("cx", a[0].toFixed(3)); it.el.setAttribute("cy", a[1].toFixed(3));
+        order.push([a[2], it.el]);
+      }
+    });
+    order.sort(function(p, q){ return p[0] - q[0]; });
+    var svg = this.svg;
+    order.forEach(function(t){ svg.appendChild(t[1]); });
+  };
+  setupViewers();
   var table = document.getElementById("entries");
   if (!table) return;
   var tbody = table.tBodies[0];

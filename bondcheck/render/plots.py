@@ -590,6 +590,42 @@ def substructure_plot(det: Detail, prefix: str | None = None) -> str:
         return _svg_text(fig, prefix)
 
 
+MODEL_MAX_ATOMS = 400  # larger cells get the static picture only
+
+
+def substructure_model(det: Detail) -> dict | None:
+    """The substructure as plain numbers for the page's 3D viewer: cell rows,
+    atoms (x, y, z, colour, anion?, label), bonds as Cartesian end points with
+    their kind, and bond partners outside the cell. Angstrom, rounded to
+    0.01. None for cells above MODEL_MAX_ATOMS atoms."""
+    if det.cell is None or len(det.symbols) > MODEL_MAX_ATOMS:
+        return None
+    role = det.role
+    is_anion = np.ones(len(det.symbols), dtype=bool) if role is None else role
+    anion_elements = list(dict.fromkeys(s for s, a in zip(det.symbols, is_anion) if a))
+    colour = {el: ELEMENT_CYCLE[k % len(ELEMENT_CYCLE)] for k, el in enumerate(anion_elements)}
+    r2 = lambda v: [round(float(x), 2) for x in v]  # noqa: E731
+    reps = set(det.rep_atoms)
+    atoms = []
+    for k, (p, el) in enumerate(zip(det.cart, det.symbols)):
+        a = bool(is_anion[k])
+        atoms.append(r2(p) + [colour[el] if a else "#666666", 1 if a else 0, det.labels[k] if (a and k in reps) else ""])
+    bonds, ghosts = [], {}
+    main = det.aa_bonds if role is not None else det.other_bonds
+    for kind, group in (("main", main), ("cc", det.cc_bonds)):
+        for i, j, shift in group:
+            sh = np.asarray(shift, dtype=float) @ det.cell
+            ends = [(i, det.cart[i], j, det.cart[j] + sh)]
+            if any(shift):
+                ends.append((j, det.cart[j], i, det.cart[i] - sh))
+            for _, p0, k1, p1 in ends:
+                bonds.append(r2(p0) + r2(p1) + [kind])
+                if any(shift):
+                    key = (k1, *[round(float(x), 2) for x in p1])
+                    ghosts[key] = r2(p1) + [atoms[k1][3], atoms[k1][4]]
+    return {"cell": [r2(v) for v in det.cell], "atoms": atoms, "bonds": bonds, "ghosts": list(ghosts.values())}
+
+
 # --------------------------------------------------------------------------
 # Scan scatter
 
