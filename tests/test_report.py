@@ -195,40 +195,52 @@ def test_closure_balances_the_residual(path):
 
 
 def test_results_files_read_alike(json_rows, tmp_path):
-    """JSON array, JSON Lines, CSV (lists as JSON text) and Parquet give the same rows."""
-    import pyarrow as pa
-    import pyarrow.parquet as pq
-
+    """A JSON array (`check --format json`), and JSON Lines, CSV and Parquet as
+    the scan writes them, give the same rows."""
     from bondcheck.commands.report import is_results_file, read_results
+    from bondcheck.scan import open_writer
 
     arr = tmp_path / "check.json"
     arr.write_text(json.dumps(json_rows))
-    jl = tmp_path / "scan.jsonl"
-    jl.write_text("\n".join(json.dumps(r) for r in json_rows))
-    keys = list(json_rows[0])
-    flat = [{k: json.dumps(v) if isinstance(v, (list, dict)) else ("" if v is None else v) for k, v in r.items()} for r in json_rows]
-    cv = tmp_path / "scan.csv"
-    with open(cv, "w", newline="") as fh:
-        w = csv.DictWriter(fh, fieldnames=keys)
-        w.writeheader()
-        w.writerows(flat)
-    pq_rows = [{k: json.dumps(v) if k in ("sites", "findings", "components") else v for k, v in r.items()} for r in json_rows]
-    pqf = tmp_path / "scan.parquet"
-    pq.write_table(pa.Table.from_pylist(pq_rows), pqf)
+    written = [arr]
+    for suffix in (".jsonl", ".csv", ".parquet"):
+        f = tmp_path / f"scan{suffix}"
+        w = open_writer(str(f))
+        for r in json_rows:
+            w.write(dict(r))
+        w.close()
+        written.append(f)
 
     assert not is_results_file(PMG_STRUCTURES / "CsCl.json"), "a pymatgen structure JSON is a structure"
-    for f in (arr, jl, cv, pqf):
+    assert not is_results_file(MINERALS / "cod_1010930.cif")
+    for f in written:
         assert is_results_file(f)
         rows = read_results(f)
-        assert [r["path"] for r in rows] == [r["path"] for r in json_rows]
+        assert [r["path"] for r in rows] == [r["path"] for r in json_rows], f.name
         for got, want in zip(rows, json_rows):
             assert got["verdict"] == want["verdict"]
             assert got["causes"] == want["causes"]
-            assert got["findings"] == want["findings"]
+            assert [(x["slug"], x["message"], x["evidence"]) for x in got["findings"]] == [
+                (x["slug"], x["message"], x["evidence"]) for x in want["findings"]
+            ], f.name
+            assert got["sites"] == want["sites"]
             for k in ("vec_anion", "aa_observed", "residual"):
                 assert (got[k] is None) == (want[k] is None)
                 if want[k] is not None:
                     assert float(got[k]) == pytest.approx(want[k])
+
+
+def test_report_from_a_scan_store(tmp_path):
+    """`bondcheck report` reads a scan's results store (SQLite) directly."""
+    store = tmp_path / "store.sqlite"
+    _run("scan", MINERALS, "--store", store, "--jobs", "1", "--no-progress", check_rc=0)
+    out = tmp_path / "store.html"
+    _run("report", store, "-o", out, check_rc=0)
+    page = out.read_text()
+    p = _Refs()
+    p.feed(page)
+    assert len(p.sections) == len(list(MINERALS.glob("*.cif")))
+    assert "CoAsS" in page and "cod_9017338" in page
 
 
 def test_report_input_errors(tmp_path):

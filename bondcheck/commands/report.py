@@ -12,7 +12,8 @@ from __future__ import annotations
 import os
 import sys
 
-RESULT_SUFFIXES = (".jsonl", ".ndjson", ".csv", ".parquet")
+RESULT_SUFFIXES = (".jsonl", ".ndjson", ".csv", ".parquet", ".pq")
+SQLITE_MAGIC = b"SQLite format 3\x00"
 EXIT_OK, EXIT_INPUT = 0, 2
 
 
@@ -22,7 +23,12 @@ def register(subparsers) -> None:
         help="write a self-contained HTML report with plots (structures or a scan's results)",
         description="Write one HTML file (no network, no files beside it) for structures or for the results of a scan.",
     )
-    p.add_argument("inputs", nargs="+", metavar="INPUT", help="structure files, directories, or results files (.jsonl, .json, .csv, .parquet)")
+    p.add_argument(
+        "inputs",
+        nargs="+",
+        metavar="INPUT",
+        help="structure files, directories, or results: .jsonl, .json, .csv, .parquet, or a scan's results store",
+    )
     p.add_argument("-o", "--output", default="report.html", help="HTML file to write ('-' for standard output; default report.html)")
     p.add_argument("--title", help="page title (default: from the inputs)")
     p.add_argument(
@@ -49,6 +55,9 @@ def is_results_file(path) -> bool:
     name = p.name.lower()
     if name.endswith(RESULT_SUFFIXES) or name.endswith(tuple(s + ".gz" for s in RESULT_SUFFIXES)):
         return True
+    if p.is_file() and not name.endswith(".json"):
+        with open(p, "rb") as fh:
+            return fh.read(16) == SQLITE_MAGIC  # a scan's results store
     if name.endswith(".json") and p.is_file():
         with open(p, "rb") as fh:
             head = fh.read(4096).lstrip()
@@ -72,10 +81,11 @@ def read_results(path) -> list[dict]:
     opener = gzip.open if name.endswith(".gz") else open
     base = name[:-3] if name.endswith(".gz") else name
     try:
-        if base.endswith(".parquet"):
-            import pyarrow.parquet as pq
+        if base.endswith((".parquet", ".pq", ".csv")) and not name.endswith(".gz") or is_store(p):
+            # The scan's own reader knows how it flattens rows.
+            from ..scan import read_rows
 
-            rows = pq.read_table(p).to_pylist()
+            rows = list(read_rows(str(p)))
         elif base.endswith(".csv"):
             import csv
 
@@ -107,6 +117,16 @@ def read_results(path) -> list[dict]:
     if not isinstance(rows, list) or not all(isinstance(r, dict) for r in rows):
         raise StructureError(f"{path}: not a list of result rows")
     return [normalise_row(r) for r in rows]
+
+
+def is_store(path) -> bool:
+    from pathlib import Path
+
+    p = Path(path)
+    if not p.is_file():
+        return False
+    with open(p, "rb") as fh:
+        return fh.read(16) == SQLITE_MAGIC
 
 
 _LISTS = ("causes", "cations", "anions", "sites", "findings")

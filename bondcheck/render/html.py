@@ -65,7 +65,7 @@ def _verdict_key(row: dict) -> str:
 
 def entry_name(row: dict) -> str:
     name = row.get("name") or ""
-    path = str(row.get("id") or row.get("path") or "")
+    path = str(row.get("entry") or row.get("id") or row.get("path") or "")
     if not name:
         name = path.rsplit("/", 1)[-1] or "(unnamed)"
     return name
@@ -258,7 +258,7 @@ def _section(entry: Entry, anchor: str, back: bool) -> str:
     head = [f'<section class="structure v-{v}" id="{anchor}" aria-labelledby="{anchor}-h">']
     sub = " \u00b7 ".join(x for x in (esc(r.get("formula")), f"space group {esc(r.get('spacegroup'))}" if r.get("spacegroup") else "") if x)
     head.append(f'<h2 id="{anchor}-h">{esc(name)}' + (f' <span class="sub">{sub}</span>' if sub else "") + "</h2>")
-    path = r.get("id") or r.get("path")
+    path = r.get("path") or r.get("entry") or r.get("id")
     if path:
         head.append(f'<p class="path">{esc(path)}</p>')
     head.append(_banner(r, v))
