@@ -143,6 +143,8 @@ def _name(comp: Component, deg: np.ndarray, crystal, contacts, count, members, i
         return "layer"
     if np.all(deg == 4):
         return "four-connected framework"
+    if np.all(deg == 3):
+        return "three-connected framework"
     return "framework"
 
 
