@@ -26,13 +26,14 @@ import hashlib
 import heapq
 import json
 import os
+import select
 import sys
 import time
 from collections import Counter, deque
 from typing import Callable, Iterable, Iterator
 
 from .sources import Entry, iter_entries, load_crystals
-from .store import Store, specific
+from .store import Store, encode, specific
 
 __all__ = ["scan", "Scanner", "Tally", "check_entry", "settings_key", "open_writer",
            "read_rows", "summarize", "render_summary", "EXIT_OK", "EXIT_FLAGGED", "EXIT_USAGE"]
@@ -112,9 +113,34 @@ def check_entry(entry: Entry, options) -> tuple[str, list[dict]]:
     return status, rows
 
 
-def _check_chunk(entries: list[Entry], options) -> list[tuple[int, str, list[dict]]]:
+# What the main process needs of a row to keep the tally, when no output
+# needs the whole row (see Scanner(full_rows=...)).
+BRIEF_KEYS = ("status", "error", "name", "formula", "verdict", "causes", "residual", "entry_seconds", "path")
+
+
+def _brief(d: dict) -> dict:
+    b = {k: d.get(k) for k in BRIEF_KEYS}
+    b["findings"] = [{"slug": f.get("slug"), "severity": f.get("severity"), "message": f.get("message")}
+                     for f in d.get("findings") or []]
+    return b
+
+
+def _answer(e: Entry, job: tuple) -> tuple:
+    """What a worker sends back for one entry: (seq, status, rows, blob,
+    texts).  The store's blob and the JSON text of each row are made here, in
+    parallel, rather than in the main process; ``rows`` are whole only when
+    the main process needs them (job = (options, full_rows))."""
+    options, full = job
+    status, rows = check_entry(e, options)
+    blob = encode(rows)
+    texts = [json.dumps({k: v for k, v in d.items() if k != "path"}, separators=(",", ":"), allow_nan=False)
+             for d in rows]
+    return e.seq, status, rows if full else [_brief(d) for d in rows], blob, texts
+
+
+def _check_chunk(entries: list[Entry], job: tuple) -> list[tuple]:
     """A chunk of entries, as a Dask task."""
-    return [(e.seq, *check_entry(e, options)) for e in entries]
+    return [_answer(e, job) for e in entries]
 
 
 def _timeout_rows(timeout: float, elapsed: float) -> list[dict]:
@@ -133,15 +159,20 @@ def _failed_rows(message: str) -> list[dict]:
 # executors: where check_entry runs
 # --------------------------------------------------------------------------
 
-Completion = tuple[Entry, str, list[dict]]
+# (entry, status, rows, blob or None, row texts or None)
+Completion = tuple
+# Status of an entry whose worker died under it (or whose cluster task
+# failed): its row says 'error', but it is not stored, so that a rerun tries
+# it again rather than remember what may have been a passing accident.
+CRASH = "crash"
 
 
 class _Inline:
     """In the calling process, one entry at a time (no timeout, no isolation
     from crashes): for debugging and for measuring scan overhead."""
 
-    def __init__(self, options):
-        self.options = options
+    def __init__(self, job: tuple):
+        self.job = job
         self.queue: deque[Entry] = deque()
         self.nworkers = 1
 
@@ -157,7 +188,7 @@ class _Inline:
 
     def poll(self, wait: float) -> list[Completion]:
         e = self.queue.popleft()
-        return [(e, *check_entry(e, self.options))]
+        return [(e, *_answer(e, self.job)[1:])]
 
     def close(self) -> None:
         self.queue.clear()
@@ -165,7 +196,7 @@ class _Inline:
     abort = close
 
 
-def _worker_main(tasks, conn, options, main_pid: int) -> None:
+def _worker_main(tasks, conn, job: tuple, main_pid: int) -> None:
     """Loop of a worker process: chunks of entries in, one message per entry out."""
     import queue
     import signal
@@ -184,7 +215,7 @@ def _worker_main(tasks, conn, options, main_pid: int) -> None:
         if chunk is None:
             return
         for e in chunk:
-            msg = (e.seq, *check_entry(e, options))
+            msg = _answer(e, job)
             try:
                 conn.send(msg)
             except (BrokenPipeError, OSError):
@@ -202,10 +233,12 @@ def _alive(pid: int) -> bool:
 
 
 class _Worker:
-    __slots__ = ("proc", "tasks", "conn", "out", "last", "done")
+    __slots__ = ("proc", "tasks", "conn", "out", "last", "done", "ready")
 
     def __init__(self, proc, tasks, conn):
         self.proc, self.tasks, self.conn = proc, tasks, conn
+        self.ready = select.poll()   # is there more to read on conn? (cheaper than conn.poll())
+        self.ready.register(conn.fileno(), select.POLLIN)
         self.out: deque[Entry] = deque()   # sent, not yet answered, in order
         self.last = time.monotonic()       # last answer (or start)
         self.done = 0
@@ -216,26 +249,41 @@ class _Processes:
     the main process always knows which entry a worker is busy with and can
     kill exactly that worker when the entry overruns its time."""
 
-    def __init__(self, options, jobs: int, timeout: float | None, chunk: int):
+    def __init__(self, job: tuple, jobs: int, timeout: float | None, chunk: int):
         import multiprocessing as mp
 
-        self.options, self.timeout, self.chunk = options, timeout, max(1, chunk)
+        self.job, self.timeout, self.chunk = job, timeout, max(1, chunk)
         self.limit = 2 * self.chunk
-        self.ctx = mp.get_context("forkserver")
-        self.ctx.set_forkserver_preload(["bondcheck.scan", "bondcheck._warm"])
+        main_file = getattr(sys.modules.get("__main__"), "__file__", None)
+        if main_file and not os.path.exists(main_file):
+            # a program read from standard input cannot be imported again in a
+            # fresh interpreter: fork this (warmed) process instead
+            import importlib
+
+            importlib.import_module("bondcheck._warm")
+            self.ctx = mp.get_context("fork")
+        else:
+            self.ctx = mp.get_context("forkserver")
+            self.ctx.set_forkserver_preload(["bondcheck.scan", "bondcheck._warm"])
         self.retry: deque[Entry] = deque()
         self.deaths = 0
         self.nworkers = jobs
+        self._poller = select.poll()
+        self._fds: dict[int, _Worker] = {}
         self.workers = [self._spawn() for _ in range(jobs)]
 
     def _spawn(self) -> _Worker:
         tasks = self.ctx.Queue()
         mine, theirs = self.ctx.Pipe(duplex=True)
-        proc = self.ctx.Process(target=_worker_main, args=(tasks, theirs, self.options, os.getpid()),
+        proc = self.ctx.Process(target=_worker_main, args=(tasks, theirs, self.job, os.getpid()),
                                 name="bondcheck-worker", daemon=True)
         proc.start()
         theirs.close()
-        return _Worker(proc, tasks, mine)
+        w = _Worker(proc, tasks, mine)
+        for fd in (mine.fileno(), proc.sentinel):
+            self._poller.register(fd, select.POLLIN | select.POLLERR | select.POLLHUP)
+            self._fds[fd] = w
+        return w
 
     @property
     def busy(self) -> bool:
@@ -263,8 +311,6 @@ class _Processes:
                     return
 
     def poll(self, wait: float) -> list[Completion]:
-        from multiprocessing.connection import wait as mp_wait
-
         done: list[Completion] = []
         if self.timeout is not None:
             now = time.monotonic()
@@ -272,18 +318,17 @@ class _Processes:
                 if w.out:
                     left = max(w.last, w.out[0].sent) + self.timeout - now
                     wait = min(wait, max(left, 0.0))
-        by_conn = {w.conn: w for w in self.workers}
-        by_sentinel = {w.proc.sentinel: w for w in self.workers}
-        ready = mp_wait(list(by_conn) + list(by_sentinel), timeout=wait)
-        dead = set()
-        for r in ready:
-            w = by_conn.get(r) or by_sentinel[r]
-            if w in dead:
+        try:
+            ready = self._poller.poll(max(0, int(wait * 1000)))
+        except InterruptedError:
+            ready = []
+        dead = []
+        for fd, _ in ready:
+            w = self._fds.get(fd)
+            if w is None or w in dead:
                 continue
-            if not self._drain(w, done):
-                dead.add(w)
-            elif r in by_sentinel:
-                dead.add(w)
+            if not self._drain(w, done) or fd == w.proc.sentinel:
+                dead.append(w)
         for w in dead:
             self._replace(w, done, "died")
         if self.timeout is not None:
@@ -299,15 +344,15 @@ class _Processes:
     def _drain(self, w: _Worker, done: list[Completion]) -> bool:
         """Take every answer waiting on a worker's pipe; False if the pipe broke."""
         try:
-            while w.conn.poll():
-                seq, status, rows = w.conn.recv()
+            while w.ready.poll(0):
+                seq, *answer = w.conn.recv()
                 e = w.out.popleft()
                 if e.seq != seq:  # cannot happen: a worker answers in order
                     raise RuntimeError(f"worker answered entry {seq}, expected {e.seq}")
                 w.last = time.monotonic()
                 w.done += 1
                 self.deaths = 0
-                done.append((e, status, rows))
+                done.append((e, *answer))
         except (EOFError, OSError):
             return False
         return True
@@ -325,22 +370,25 @@ class _Processes:
         if w.out:
             head = w.out.popleft()
             if why == "timeout":
-                done.append((head, "timeout", _timeout_rows(self.timeout, now - max(w.last, head.sent))))
+                done.append((head, "timeout", _timeout_rows(self.timeout, now - max(w.last, head.sent)), None, None))
             else:
-                self.deaths += 1
-                done.append((head, "error", _failed_rows(
-                    f"the worker process stopped while checking this entry (exit code {code})")))
+                if not w.done:
+                    self.deaths += 1
+                done.append((head, CRASH, _failed_rows(
+                    f"the worker process stopped while checking this entry (exit code {code})"), None, None))
             self.retry.extendleft(reversed(w.out))
             w.out.clear()
-        elif why != "timeout":
+        elif why != "timeout" and not w.done:
             self.deaths += 1
-        if self.deaths > 3 * len(self.workers) + 3:
+        if self.deaths > 3 * len(self.workers) + 10:
             raise RuntimeError("worker processes keep stopping without finishing any entry; "
                                "run with --executor inline to see the error")
         self.workers[self.workers.index(w)] = self._spawn()
 
-    @staticmethod
-    def _discard(w: _Worker) -> None:
+    def _discard(self, w: _Worker) -> None:
+        for fd in (w.conn.fileno(), w.proc.sentinel):
+            if self._fds.pop(fd, None) is not None:
+                self._poller.unregister(fd)
         w.tasks.cancel_join_thread()
         w.tasks.close()
         w.conn.close()
@@ -379,8 +427,8 @@ class _Dask:
     The start of a task is taken from the scheduler (polled twice a second),
     so timeouts are approximate."""
 
-    def __init__(self, options, client, timeout: float | None, chunk: int):
-        self.options, self.client, self.timeout = options, client, timeout
+    def __init__(self, job: tuple, client, timeout: float | None, chunk: int):
+        self.job, self.client, self.timeout = job, client, timeout
         nthreads = sum(client.nthreads().values()) or 1
         self.nworkers = nthreads
         self.chunk = 1 if timeout is not None else max(1, chunk)
@@ -406,7 +454,7 @@ class _Dask:
             now = time.monotonic()
             for e in chunk:
                 e.sent = now
-            fut = self.client.submit(_check_chunk, chunk, self.options, pure=False)
+            fut = self.client.submit(_check_chunk, chunk, self.job, pure=False)
             self.futures[fut] = chunk
 
     def poll(self, wait: float) -> list[Completion]:
@@ -424,8 +472,8 @@ class _Dask:
             self.started.pop(str(fut.key), None)
             if fut.status == "finished":
                 bys = {e.seq: e for e in chunk}
-                for seq, status, rows in fut.result():
-                    done.append((bys[seq], status, rows))
+                for seq, *answer in fut.result():
+                    done.append((bys[seq], *answer))
             else:
                 try:
                     err = fut.exception()
@@ -433,7 +481,7 @@ class _Dask:
                 except Exception as exc:
                     msg = f"{type(exc).__name__}: {exc}"
                 for e in chunk:
-                    done.append((e, "error", _failed_rows(f"the cluster could not check this entry ({msg})")))
+                    done.append((e, CRASH, _failed_rows(f"the cluster could not check this entry ({msg})"), None, None))
         if self.timeout is not None and self.futures:
             self._overdue(done)
         return done
@@ -454,7 +502,7 @@ class _Dask:
                 self.started.pop(str(fut.key), None)
                 fut.cancel()
                 for e in chunk:
-                    done.append((e, "timeout", _timeout_rows(self.timeout, now - t)))
+                    done.append((e, "timeout", _timeout_rows(self.timeout, now - t), None, None))
 
     def close(self) -> None:
         for fut in self.futures:
@@ -472,19 +520,25 @@ class _Dask:
 class Scanner:
     """Runs a scan; iterate :meth:`rows` for the result rows as they come.
 
-    Counters: ``entries`` (seen), ``checked`` (sent to a worker), ``reused``
+    Counters: ``entries`` (seen), ``checked`` (answered by a worker), ``reused``
     (answered from the store), ``copies`` (identical content checked once in
-    this scan), ``failed`` (could not be opened)."""
+    this scan), ``failed`` (could not be opened).
+
+    With ``full_rows=False`` freshly checked rows carry only what a summary
+    needs (``BRIEF_KEYS``, findings without sites and evidence, and entry,
+    path, hash); their complete JSON text is in ``row.json``.  That spares
+    the main process unpickling the per-site tables it would not use."""
 
     def __init__(self, inputs: Iterable[str], options=None, *, jobs: int | None = None,
                  timeout: float | None = None, store: str | Store | None = None,
                  executor: str = "process", scheduler: str | None = None, client=None,
-                 chunk: int = DEFAULT_CHUNK, retry_failed: bool = False):
+                 chunk: int = DEFAULT_CHUNK, retry_failed: bool = False, full_rows: bool = True):
         from .api import Options
 
         self.inputs = [os.fspath(i) for i in inputs]
         self.options = options or Options()
         self.okey = settings_key(self.options)
+        self.job = (self.options, full_rows)
         self.jobs = default_jobs() if not jobs else int(jobs)
         self.timeout = float(timeout) if timeout else None
         self.executor_name = executor
@@ -505,9 +559,9 @@ class Scanner:
 
     def _executor(self):
         if self.executor_name == "inline":
-            return _Inline(self.options)
+            return _Inline(self.job)
         if self.executor_name == "process":
-            return _Processes(self.options, self.jobs, self.timeout, self.chunk)
+            return _Processes(self.job, self.jobs, self.timeout, self.chunk)
         if self.executor_name == "dask":
             client = self.client
             if client is None:
@@ -517,7 +571,7 @@ class Scanner:
                     raise ValueError("--executor dask needs --scheduler ADDRESS")
                 client = self.client = Client(self.scheduler)
                 self._own_client = True
-            return _Dask(self.options, client, self.timeout, self.chunk)
+            return _Dask(self.job, client, self.timeout, self.chunk)
         raise ValueError(f"unknown executor {self.executor_name!r} (process, inline or dask)")
 
     def _usable(self, hit) -> bool:
@@ -561,23 +615,24 @@ class Scanner:
                     waiting.append(e)
                     continue
                 self._inflight[digest] = [e]
-                self.checked += 1
                 return e
             self._exhausted = True
             return None
 
         return take
 
-    def _finish(self, e: Entry, status: str, rows: list[dict]) -> None:
+    def _finish(self, e: Entry, status: str, rows: list[dict], blob: bytes | None = None,
+                texts: list[str] | None = None) -> None:
         digest = e.digest
         same = self._inflight.pop(digest, [e])
-        if self.store is not None:
-            self.store.put(digest, self.okey, e.id, status, rows,
-                           self.timeout if status == "timeout" else None)
+        self.checked += 1
+        if self.store is not None and status != CRASH:
+            self.store.put(digest, self.okey, e.id, status, rows, self.timeout if status == "timeout" else None,
+                           blob=blob)
             for other in same[1:]:
                 self.store.link(digest, self.okey, other.id)
         for other in same:
-            self._ready.extend(specific(rows, other.id, digest))
+            self._ready.extend(specific(rows, other.id, digest, texts))
 
     # -- the loop -----------------------------------------------------------
 
@@ -613,8 +668,8 @@ class Scanner:
                     if self._exhausted:
                         break
                     continue
-                for e, status, rows in ex.poll(tick):
-                    self._finish(e, status, rows)
+                for done in ex.poll(tick):
+                    self._finish(*done)
                 while self._ready:
                     yield self._ready.popleft()
             clean = True
@@ -652,7 +707,8 @@ class _JsonlWriter:
         self.fh = sys.stdout if path == "-" else open(path, "w", encoding="utf-8")
 
     def write(self, row: dict) -> None:
-        self.fh.write(json.dumps(row, separators=(",", ":"), allow_nan=False))
+        text = getattr(row, "json", None)
+        self.fh.write(text if text is not None else json.dumps(row, separators=(",", ":"), allow_nan=False))
         self.fh.write("\n")
 
     def close(self) -> None:
@@ -1075,9 +1131,10 @@ def scan(inputs: Iterable[str], options=None, *, out: Iterable[str] = (), store:
     :class:`Tally` (``tally.interrupted`` is set when Ctrl-C stopped it; the
     files written so far are complete and the store resumes the scan)."""
     inputs = list(inputs)
-    sc = Scanner(inputs, options, jobs=jobs, timeout=timeout, store=store, executor=executor,
-                 scheduler=scheduler, client=client, chunk=chunk, retry_failed=retry_failed)
     writers = [open_writer(p) for p in out]
+    sc = Scanner(inputs, options, jobs=jobs, timeout=timeout, store=store, executor=executor,
+                 scheduler=scheduler, client=client, chunk=chunk, retry_failed=retry_failed,
+                 full_rows=any(not isinstance(w, _JsonlWriter) for w in writers))
     tally = Tally(top)
     bar = _Progress(inputs) if _show_progress(progress) else None
     rows = sc.rows()

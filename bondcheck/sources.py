@@ -23,6 +23,7 @@ import gzip
 import hashlib
 import os
 import re
+import stat
 import sys
 from typing import Iterable, Iterator
 
@@ -132,9 +133,13 @@ def iter_entries(inputs: Iterable[str], *, load: bool = True) -> Iterator[Entry]
     which is what counting needs."""
     for arg in inputs:
         arg = os.fspath(arg)
-        if os.path.isdir(arg):
+        try:
+            is_dir = stat.S_ISDIR(os.stat(arg).st_mode)
+        except OSError:
+            is_dir = None  # does not exist (or cannot be looked at)
+        if is_dir:
             yield from _walk(arg, load)
-        elif os.path.exists(arg):
+        elif is_dir is not None:
             yield from _one_path(arg, load)
         elif _GLOB_CHARS.search(arg):
             matches = sorted(glob.glob(arg, recursive=True))

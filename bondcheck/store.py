@@ -4,14 +4,14 @@ Work is keyed by the content hash of an entry and the settings it was checked
 with (``Options.key()`` plus the bondcheck version), so a rerun skips what is
 done, a renamed or moved file is not checked again, and a scan that was
 interrupted (Ctrl-C, kill -9, a power cut) resumes where it stopped: rows are
-committed in small transactions in write-ahead-log mode, and whatever was not
-committed is simply checked again.  The primary keys make a second copy of a
-row impossible.
+written in small transactions (four a second) in write-ahead-log mode, and
+whatever was not committed is simply checked again.  The primary keys make a
+second copy of a row impossible.
 
 Tables
   results(hash, okey, status, timeout, seconds, rows)   rows: zlib-compressed JSON
   entries(entry, okey, hash)                            which entry holds which content
-  runs(id, okey, started, finished, ...)                one line per scan
+  runs(id, okey, inputs, started, finished, ...)        one line per scan
 """
 from __future__ import annotations
 
@@ -31,7 +31,7 @@ CREATE TABLE IF NOT EXISTS results (
     seconds REAL NOT NULL,
     rows BLOB NOT NULL,
     PRIMARY KEY (hash, okey)
-) WITHOUT ROWID;
+);
 CREATE TABLE IF NOT EXISTS entries (
     entry TEXT NOT NULL,
     okey TEXT NOT NULL,
@@ -53,14 +53,30 @@ CREATE TABLE IF NOT EXISTS runs (
 );
 """
 
-# Keys of a stored row that depend on the entry rather than its content.
+# Keys of a row that belong to its entry rather than to its content.
 _ENTRY_KEYS = ("entry", "hash")
+
+
+class Row(dict):
+    """A result row (a plain dict to its users).  ``json`` holds its JSON
+    text when a worker has already written it, so the main process need not."""
+
+    __slots__ = ("json",)
+
+
+def encode(rows: list[dict]) -> bytes:
+    """The stored form of an entry's rows (content-only, see :func:`generic`)."""
+    return zlib.compress(json.dumps(rows, separators=(",", ":"), allow_nan=False).encode(), 1)
+
+
+def decode(blob: bytes) -> list[dict]:
+    return json.loads(zlib.decompress(blob))
 
 
 class Store:
     """Finished work, keyed by (content hash, settings key)."""
 
-    def __init__(self, path: str, *, commit_every: float = 0.5):
+    def __init__(self, path: str, *, commit_every: float = 0.25):
         self.path = os.fspath(path)
         d = os.path.dirname(os.path.abspath(self.path))
         os.makedirs(d, exist_ok=True)
@@ -68,50 +84,56 @@ class Store:
         self.con.execute("PRAGMA journal_mode=WAL")
         self.con.execute("PRAGMA synchronous=NORMAL")
         self.con.executescript(SCHEMA)
-        self.con.execute("BEGIN")
-        self._last_commit = time.monotonic()
-        self._pending = 0
         self.commit_every = commit_every
+        self._results: dict[tuple[str, str], tuple] = {}   # written, not yet in the file
+        self._entries: dict[tuple[str, str], str] = {}
+        self._last_commit = time.monotonic()
 
     # -- work ---------------------------------------------------------------
 
     def get(self, digest: str, okey: str) -> tuple[str, float | None, list[dict]] | None:
         """(status, timeout, rows) stored for this content and settings, or None."""
-        r = self.con.execute(
-            "SELECT status, timeout, rows FROM results WHERE hash=? AND okey=?", (digest, okey)).fetchone()
+        r = self._results.get((digest, okey))
         if r is None:
-            return None
-        return r[0], r[1], json.loads(zlib.decompress(r[2]))
+            r = self.con.execute(
+                "SELECT hash, okey, status, timeout, seconds, rows FROM results WHERE hash=? AND okey=?",
+                (digest, okey)).fetchone()
+            if r is None:
+                return None
+        return r[2], r[3], decode(r[5])
 
-    def put(self, digest: str, okey: str, entry: str, status: str, rows: list[dict],
-            timeout: float | None = None) -> None:
-        """Remember the rows checked for one entry.  ``rows`` are in the
-        content-only form (see :func:`generic`), so that other copies of the
-        same content reuse them."""
-        blob = zlib.compress(json.dumps(rows, separators=(",", ":"), allow_nan=False).encode(), 1)
-        seconds = float(rows[0].get("entry_seconds") or 0.0) if rows else 0.0
-        self.con.execute(
-            "INSERT OR REPLACE INTO results VALUES (?, ?, ?, ?, ?, ?)",
-            (digest, okey, status, timeout, seconds, blob))
-        self.con.execute("INSERT OR REPLACE INTO entries VALUES (?, ?, ?)", (entry, okey, digest))
+    def put(self, digest: str, okey: str, entry: str, status: str, rows: list[dict] | None = None,
+            timeout: float | None = None, *, blob: bytes | None = None, seconds: float | None = None) -> None:
+        """Remember the rows checked for one entry, in the content-only form
+        (see :func:`generic`), given as ``rows`` or already encoded as ``blob``."""
+        if blob is None:
+            blob = encode(rows or [])
+        if seconds is None:
+            seconds = float(rows[0].get("entry_seconds") or 0.0) if rows else 0.0
+        self._results[(digest, okey)] = (digest, okey, status, timeout, seconds, blob)
+        self._entries[(entry, okey)] = digest
         self._tick()
 
     def link(self, digest: str, okey: str, entry: str) -> None:
         """Record that an entry holds content whose result is already stored."""
-        self.con.execute("INSERT OR REPLACE INTO entries VALUES (?, ?, ?)", (entry, okey, digest))
+        self._entries[(entry, okey)] = digest
         self._tick()
 
     def _tick(self) -> None:
-        self._pending += 1
-        now = time.monotonic()
-        if now - self._last_commit >= self.commit_every:
+        if time.monotonic() - self._last_commit >= self.commit_every:
             self.commit()
 
     def commit(self) -> None:
-        if self.con.in_transaction:
-            self.con.execute("COMMIT")
-        self.con.execute("BEGIN")
-        self._pending = 0
+        """Write what is pending in one transaction."""
+        if self._results or self._entries:
+            with self.con:
+                self.con.execute("BEGIN")
+                self.con.executemany("INSERT OR REPLACE INTO results VALUES (?, ?, ?, ?, ?, ?)",
+                                     self._results.values())
+                self.con.executemany("INSERT OR REPLACE INTO entries VALUES (?, ?, ?)",
+                                     [(e, o, h) for (e, o), h in self._entries.items()])
+            self._results.clear()
+            self._entries.clear()
         self._last_commit = time.monotonic()
 
     # -- runs ---------------------------------------------------------------
@@ -120,15 +142,14 @@ class Store:
         cur = self.con.execute(
             "INSERT INTO runs (okey, inputs, started, jobs, interrupted) VALUES (?, ?, ?, ?, 1)",
             (okey, json.dumps(inputs), time.time(), jobs))
-        self.commit()
         return int(cur.lastrowid)
 
     def finish_run(self, run: int, *, entries: int, checked: int, reused: int, wall: float,
                    interrupted: bool) -> None:
+        self.commit()
         self.con.execute(
             "UPDATE runs SET finished=?, entries=?, checked=?, reused=?, wall=?, interrupted=? WHERE id=?",
             (time.time(), entries, checked, reused, wall, int(interrupted), run))
-        self.commit()
 
     def last_run(self) -> dict | None:
         cur = self.con.execute("SELECT * FROM runs ORDER BY id DESC LIMIT 1")
@@ -145,6 +166,7 @@ class Store:
     def iter_rows(self, okey: str | None = None) -> Iterator[dict]:
         """Every stored row for one settings key (the last run's by default),
         in entry order."""
+        self.commit()
         if okey is None:
             run = self.last_run()
             keys = self.okeys()
@@ -153,12 +175,11 @@ class Store:
             "SELECT e.entry, e.hash, r.rows FROM entries e JOIN results r "
             "ON r.hash = e.hash AND r.okey = e.okey WHERE e.okey=? ORDER BY e.entry", (okey,))
         for entry, digest, blob in cur:
-            yield from specific(json.loads(zlib.decompress(blob)), entry, digest)
+            yield from specific(decode(blob), entry, digest)
 
     def close(self) -> None:
         try:
-            if self.con.in_transaction:
-                self.con.execute("COMMIT")
+            self.commit()
         finally:
             self.con.close()
 
@@ -172,13 +193,21 @@ def generic(row: dict, entry: str) -> dict:
     return g
 
 
-def specific(rows: list[dict], entry: str, digest: str) -> list[dict]:
-    """Stored rows made into the rows of one entry."""
+def specific(rows: list[dict], entry: str, digest: str, texts: list[str] | None = None) -> list[Row]:
+    """Stored rows made into the rows of one entry: ``entry`` and ``path``
+    first, ``hash`` last.  ``texts``: the JSON of each row without its path,
+    as a worker wrote it."""
     out = []
-    for g in rows:
-        r = {"entry": entry}
-        r.update(g)
-        r["path"] = entry + (g.get("path") or "")
+    for i, g in enumerate(rows):
+        path = entry + (g.get("path") or "")
+        r = Row(entry=entry, path=path)
+        r.update((k, v) for k, v in g.items() if k != "path")
         r["hash"] = digest
+        if texts is not None:
+            body = texts[i]
+            r.json = (f'{{"entry":{json.dumps(entry)},"path":{json.dumps(path)},'
+                      f'{body[1:-1]},"hash":"{digest}"}}')
+        else:
+            r.json = None
         out.append(r)
     return out

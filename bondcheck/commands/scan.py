@@ -61,6 +61,8 @@ def _options(args):
 def run(args) -> int:
     from ..scan import (DEFAULT_CHUNK, DEFAULT_STORE, EXIT_FLAGGED, EXIT_INTERRUPTED, EXIT_OK, EXIT_USAGE,
                         render_summary, scan)
+    import sqlite3
+
     from ..sources import read_list
 
     def usage(msg: str) -> int:
@@ -95,7 +97,7 @@ def run(args) -> int:
         tally = scan(inputs, options, out=args.out, store=store, jobs=args.jobs, timeout=args.timeout,
                      executor=args.executor, scheduler=args.scheduler, chunk=args.chunk or DEFAULT_CHUNK,
                      retry_failed=args.retry_failed, progress=args.progress, top=args.top)
-    except (RuntimeError, ValueError, OSError) as exc:
+    except (RuntimeError, ValueError, OSError, sqlite3.Error) as exc:
         print(f"bondcheck scan: {exc}", file=sys.stderr)
         return EXIT_USAGE
     summary_to = sys.stderr if to_stdout else sys.stdout

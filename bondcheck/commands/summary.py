@@ -19,6 +19,7 @@ def register(subparsers) -> None:
 
 def run(args) -> int:
     import json
+    import sqlite3
 
     from ..scan import EXIT_OK, EXIT_USAGE, render_summary, summarize
 
@@ -27,7 +28,7 @@ def run(args) -> int:
     except FileNotFoundError:
         print(f"bondcheck summary: no such file: {args.results}", file=sys.stderr)
         return EXIT_USAGE
-    except (ValueError, OSError, KeyError) as exc:
+    except (ValueError, OSError, KeyError, sqlite3.Error) as exc:
         print(f"bondcheck summary: cannot read {args.results}: {exc}", file=sys.stderr)
         return EXIT_USAGE
     if args.format == "json":
