@@ -163,13 +163,21 @@ def count(
     candidates = candidate_partitions(crystal)
     if not candidates:
         return None
-    tried = [ctx.evaluate(an, why) for an, why in candidates]
+    tried = []
+    for an, why in candidates:
+        c = ctx.evaluate(an, why)
+        tried.append(c)
+        # Costs are never negative and the candidates grow one anion element
+        # at a time, so a valid closure of cost 0 is the choice below: the
+        # further splits need not be counted.
+        if c.valid and c.closure.closes and round(c.closure.cost, 6) == 0:
+            break
     closing = [c for c in tried if c.valid and c.closure.closes]
     if closing:
         # Cheapest closure (fewest unusual oxidation states and lone pairs);
         # among equals the smallest anion set.
         best = min(closing, key=lambda c: (round(c.closure.cost, 6), len(c.anions)))
-        if len(tried) > 1:
+        if len(candidates) > 1:
             best.reason += "; of the splits tried, the simplest that closes the count"
         return best
     # Nothing closes: report the natural polyanion split.
@@ -218,6 +226,8 @@ class _Context:
         self.group_of = self.group_of.reshape(-1)
         self.groups = [(int(k // 128), int(k % 128)) for k in uniq]
         self.group_weight = np.bincount(self.group_of, weights=self.occ, minlength=len(uniq))
+        self.group_size = np.bincount(self.group_of, minlength=len(uniq))
+        self.targets = np.where((z == 1) | (z == 2), 2.0, 8.0)
 
     def polyanion_split(self, start: list[str]) -> tuple[list[str], str]:
         """Grow the anion set by elements bonded to anions with a small
@@ -280,7 +290,7 @@ class _Context:
         cc = cc_candidate & (self.bd <= limit)
 
         n_anion = float(np.sum(occ[role]))
-        targets = np.array([target(s) for s in self.sym_of_atom], dtype=float)
+        targets = self.targets
         shell = float(np.sum(occ[role] * targets[role]))
         aa_ends = 2.0 * float(np.sum(bw[aa]))
         cc_e = 2.0 * float(np.sum(bw[cc]))
@@ -291,10 +301,10 @@ class _Context:
         residual = vec - mean_target + aa_obs - cc_obs
 
         # Per-atom homonuclear-role bonds: anion-anion for anions, cation-cation for cations.
-        per = np.zeros(n)
-        for mask in (aa, cc):
-            np.add.at(per, bi[mask], occ[bj[mask]])
-            np.add.at(per, bj[mask], occ[bi[mask]])
+        ia, ja, ic, jc = bi[aa], bj[aa], bi[cc], bj[cc]
+        per = np.bincount(
+            np.concatenate([ia, ja, ic, jc]), weights=np.concatenate([occ[ja], occ[ia], occ[jc], occ[ic]]), minlength=n
+        )
 
         # Validity: a p-block cation bonded to another cation of a different
         # element should rather be an anion.
@@ -392,14 +402,15 @@ class _Context:
         cation-cation bonds) and pi electrons that make the count close."""
         tol = max(TOL * n_anion, 0.02)
         options = self._group_options(role, per, saturated)
-        totals = _reachable(options)
+        totals, top = _reachable(options, keep_needed - tol, keep_needed + tol)
         pi_short = pi_planar = 0.0
         best = _match(totals, keep_needed, tol)
         pi = 0.0
-        if best is None and keep_needed < tol + max(totals, default=0.0):
+        if best is None and keep_needed < tol + top:
             pi_short, pi_planar = self._pi_capacity(role, aa, per)
             cap = pi_short + pi_planar
             steps = int(math.floor(cap + 1e-6))
+            totals, _ = _reachable(options, keep_needed + min(1.0, cap) - tol, keep_needed + cap + tol)
             for p in range(1, steps + 1):
                 best = _match(totals, keep_needed + p, tol)
                 if best is not None:
@@ -418,21 +429,30 @@ class _Context:
     def _group_options(self, role, per, saturated):
         """Per cation group: (group index, weight, {kept electrons per atom: cost})."""
         out = []
+        go = self.group_of
+        ng = len(self.groups)
+        has_anion = np.bincount(go[role], minlength=ng) > 0
+        all_saturated = np.bincount(go[~saturated], minlength=ng) == 0
+        if np.array_equal(per, np.rint(per)):
+            # Whole bond counts: any order of summation gives np.mean's value.
+            ccb_all = np.bincount(go, weights=per, minlength=ng) / self.group_size
+        else:
+            ccb_all = None
         for g, (site, zz) in enumerate(self.groups):
-            atoms = self.group_of == g
-            if role[atoms].any():
+            if has_anion[g]:
                 continue
-            sym = elements.symbols()[zz]
+            sym, block, valence, keep = _element_facts(zz)
             w = float(self.group_weight[g])
-            ccb = float(np.mean(per[atoms]))  # cation-cation bonds per atom
+            # cation-cation bonds per atom
+            ccb = float(ccb_all[g]) if ccb_all is not None else float(np.mean(per[go == g]))
             if sym in self.valence_override:
                 v = self.valence_override[sym]
                 opts = {0: 0}
             else:
-                v = elements.valence(sym)
-                opts = elements.keep_options(sym)
-            if elements.block(sym) == "p" or sym in self.valence_override:
-                if saturated[atoms].all():
+                v = valence
+                opts = keep
+            if block == "p" or sym in self.valence_override:
+                if all_saturated[g]:
                     opts = {0: 0}
                 opts = {ccb + k: c for k, c in opts.items()}
             else:
@@ -443,48 +463,145 @@ class _Context:
         return out
 
 
-def _reachable(options):
+_FACTS: dict[int, tuple] = {}
+
+
+def _element_facts(z: int) -> tuple:
+    """(symbol, block, valence, keep options) of an element, cached; the keep
+    options dict is shared and must not be changed."""
+    f = _FACTS.get(z)
+    if f is None:
+        sym = elements.symbols()[z]
+        f = _FACTS[z] = (sym, elements.block(sym), elements.valence(sym), elements.keep_options(sym))
+    return f
+
+
+def _local_totals(w: float, opts: dict) -> dict:
+    """Kept electrons of one group: total -> (cost, electrons per atom, mixed)."""
+    local: dict[float, tuple[float, float, bool]] = {}
+    items = sorted(opts.items())
+    for k, c in items:
+        # A small convex term spreads kept electrons evenly over the sites
+        # of one element (V3+ on two sites rather than V2+ and V4+).
+        local.setdefault(round(w * k, 4), (c * w + 0.001 * w * k * k, k, False))
+    wi = int(round(w))
+    if abs(w - wi) < 1e-6 and 1 < wi <= 96 and len(items) > 1:
+        for x in range(len(items)):
+            for y in range(x + 1, len(items)):
+                (k1, c1), (k2, c2) = items[x], items[y]
+                for a in range(1, wi):
+                    tot = round(a * k1 + (wi - a) * k2, 4)
+                    cost = a * c1 + (wi - a) * c2 + 0.5 + 0.001 * (a * k1 * k1 + (wi - a) * k2 * k2)
+                    if tot not in local or local[tot][0] > cost:
+                        local[tot] = (cost, tot / wi, True)
+    return local
+
+
+MAX_STATES = 20000
+
+
+def _reachable(options, lo: float = -math.inf, hi: float = math.inf):
     """Totals of kept electrons reachable by choosing one option per group
-    (uniform over the group) or mixing two options within a group; maps
-    total -> (cost, choice, mixed groups)."""
-    states: dict[float, tuple[float, dict, list]] = {0.0: (0.0, {}, [])}
+    (uniform over the group) or mixing two options within a group.
+
+    Returns (totals, top): totals maps total -> (cost, path), path a linked
+    list (group, electrons per atom, mixed, previous path) that `_match`
+    unrolls; top is the largest reachable total. Only totals that can still
+    end within [lo, hi] are followed: a state is dropped when even its
+    smallest and largest completions miss the window. Dropping never changes
+    which path wins a kept total (every path to a kept total runs through
+    kept states, met in the same order), so the result within the window is
+    that of the full enumeration. The enumeration stops after a group that
+    leaves more than MAX_STATES totals; the window is used only where that
+    cannot happen."""
+    locs = []
     for g, w, opts, _v in options:
         if not opts:
-            return {}
-        local: dict[float, tuple[float, float, bool]] = {}
-        items = sorted(opts.items())
-        for k, c in items:
-            # A small convex term spreads kept electrons evenly over the sites
-            # of one element (V3+ on two sites rather than V2+ and V4+).
-            local.setdefault(round(w * k, 4), (c * w + 0.001 * w * k * k, k, False))
-        wi = int(round(w))
-        if abs(w - wi) < 1e-6 and 1 < wi <= 96 and len(items) > 1:
-            for x in range(len(items)):
-                for y in range(x + 1, len(items)):
-                    (k1, c1), (k2, c2) = items[x], items[y]
-                    for a in range(1, wi):
-                        tot = round(a * k1 + (wi - a) * k2, 4)
-                        cost = a * c1 + (wi - a) * c2 + 0.5 + 0.001 * (a * k1 * k1 + (wi - a) * k2 * k2)
-                        if tot not in local or local[tot][0] > cost:
-                            local[tot] = (cost, tot / wi, True)
-        new: dict[float, tuple[float, dict, list]] = {}
-        for t0, (c0, ch0, mx0) in states.items():
+            locs = None
+            break
+        locs.append((g, _local_totals(w, opts)))
+    windowed = locs is not None and (lo > -math.inf or hi < math.inf) and _few_totals(locs)
+    if not windowed:
+        return _enumerate(options)
+    # Smallest and largest completion after each group; a rounding slack of
+    # 1e-4 per remaining group keeps the bounds conservative.
+    n = len(locs)
+    rest_lo = [0.0] * (n + 1)
+    rest_hi = [0.0] * (n + 1)
+    for L in range(n - 1, -1, -1):
+        loc = locs[L][1]
+        rest_lo[L] = rest_lo[L + 1] + min(loc)
+        rest_hi[L] = rest_hi[L + 1] + max(loc)
+    top = 0.0
+    for _g, loc in locs:
+        top = round(top + max(loc), 4)
+    states: dict[float, tuple[float, tuple | None]] = {0.0: (0.0, None)}
+    for L, (g, local) in enumerate(locs):
+        slack = (n - L) * 1e-4 + 1e-6
+        a, b = lo - slack - rest_hi[L], hi + slack - rest_lo[L]
+        new: dict[float, tuple[float, tuple | None]] = {}
+        items = list(local.items())
+        for t0, (c0, p0) in states.items():
+            if t0 < a or t0 > b:
+                continue
+            for t1, (c1, k, mixed) in items:
+                t = round(t0 + t1, 4)
+                cost = c0 + c1
+                old = new.get(t)
+                if old is None or old[0] > cost:
+                    new[t] = (cost, (g, k, mixed, p0))
+        states = new
+    return states, top
+
+
+def _few_totals(locs) -> bool:
+    """True when no group can leave more than MAX_STATES distinct totals."""
+    bound = 1
+    for _g, loc in locs:
+        bound *= len(loc)
+        if bound > MAX_STATES:
+            break
+    if bound <= MAX_STATES:
+        return True
+    if all(t == int(t) for _g, loc in locs for t in loc):
+        # Whole totals: at most (largest - smallest + 1) of them.
+        span = sum(max(loc) - min(loc) for _g, loc in locs)
+        return span + 1 <= MAX_STATES
+    return False
+
+
+def _enumerate(options):
+    """Every reachable total (the window-free case of `_reachable`)."""
+    states: dict[float, tuple[float, tuple | None]] = {0.0: (0.0, None)}
+    for g, w, opts, _v in options:
+        if not opts:
+            return {}, 0.0
+        local = _local_totals(w, opts)
+        new: dict[float, tuple[float, tuple | None]] = {}
+        for t0, (c0, p0) in states.items():
             for t1, (c1, k, mixed) in local.items():
                 t = round(t0 + t1, 4)
                 cost = c0 + c1
-                if t not in new or new[t][0] > cost:
-                    ch = dict(ch0)
-                    ch[g] = k
-                    new[t] = (cost, ch, mx0 + [g] if mixed else mx0)
+                old = new.get(t)
+                if old is None or old[0] > cost:
+                    new[t] = (cost, (g, k, mixed, p0))
         states = new
-        if len(states) > 20000:
-            return states
-    return states
+        if len(states) > MAX_STATES:
+            break
+    return states, max(states, default=0.0)
 
 
 def _match(totals, needed: float, tol: float):
     best = None
-    for t, (cost, choice, mixed) in totals.items():
+    for t, (cost, path) in totals.items():
         if abs(t - needed) <= tol and (best is None or cost < best[0]):
-            best = (cost, choice, mixed)
-    return best
+            best = (cost, path)
+    if best is None:
+        return None
+    cost, path = best
+    steps = []
+    while path is not None:
+        g, k, mixed, path = path
+        steps.append((g, k, mixed))
+    steps.reverse()
+    return cost, {g: k for g, k, _m in steps}, [g for g, _k, m in steps if m]
