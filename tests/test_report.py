@@ -60,6 +60,7 @@ def _run(*args, check_rc=None) -> _Proc:
 # rule does not describe (mismatch); fcc Cu has nothing to count.
 DCDFT = ("Pb", "Po", "Cu")
 PMG = ("CsCl.json", "K2O2.json", "Graphite.json", "TlBiSe2.json", "Si.json")
+CAPPED = 4  # sections in the report capped by --max-sections
 SUMMARY_PLOTS = 6  # figures on a few entries (each costs about half a second), drawn by 2 workers
 
 
@@ -100,6 +101,8 @@ def reports(inputs, json_rows, tmp_path_factory) -> dict[str, Path]:
     jl.write_text("".join(json.dumps(r) + "\n" for r in json_rows))
     out["jsonl"] = d / "scan.html"
     _run("report", jl, "-o", out["jsonl"], check_rc=0)
+    out["capped"] = d / "capped.html"
+    _run("report", jl, "-o", out["capped"], "--plots", "none", "--max-sections", str(CAPPED), check_rc=0)
     return out
 
 
@@ -296,6 +299,21 @@ def test_page_is_self_contained(reports, json_rows):
     p = _Refs()
     p.feed(reports["structures"].read_text())
     assert len(p.sections) == len(json_rows)
+
+
+def test_sections_capped_flagged_first(reports, json_rows):
+    """--max-sections keeps sections for errors, then mismatches, then entries
+    with nothing to count, then consistent ones; every row stays in the table."""
+    import re
+
+    page = reports["capped"].read_text()
+    p = _Refs()
+    p.feed(page)
+    rank = {None: 0, "mismatch": 1, "not-applicable": 2, "consistent": 3}
+    want = sorted(range(len(json_rows)), key=lambda n: (rank[json_rows[n]["verdict"]], n))[:CAPPED]
+    assert p.sections == [f"e{n + 1}" for n in sorted(want)]
+    assert len(re.findall(r'<tr class="v-[a-z-]+" data-verdict=', page)) == len(json_rows)
+    assert f"{len(json_rows) - CAPPED} of {len(json_rows)} entries are rows of the table" in page
 
 
 # --------------------------------------------------------------------------

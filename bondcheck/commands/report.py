@@ -39,6 +39,13 @@ def register(subparsers) -> None:
         "file is at hand; all = also consistent result rows; none = no figures (default auto)",
     )
     p.add_argument("--max-plots", type=int, default=100, metavar="N", help="at most N entries with figures, mismatches first (default 100)")
+    p.add_argument(
+        "--max-sections",
+        type=int,
+        default=2000,
+        metavar="N",
+        help="at most N entries get a section of their own, flagged ones first; the rest are rows of the table (default 2000)",
+    )
     p.add_argument("--jobs", type=int, default=0, metavar="N", help="worker processes drawing figures (default: all cores)")
     p.add_argument("--anions", help="comma-separated anion elements for the structures checked here")
     p.add_argument("--valence", action="append", metavar="El=n", help="override valence electrons, e.g. Eu=2 (repeatable)")
@@ -239,8 +246,8 @@ def run(args) -> int:
         if el not in known:
             print(f"bondcheck report: unknown element {el!r}", file=sys.stderr)
             return EXIT_INPUT
-    if args.max_plots < 0:
-        print("bondcheck report: --max-plots must be 0 or more", file=sys.stderr)
+    if args.max_plots < 0 or args.max_sections < 0:
+        print("bondcheck report: --max-plots and --max-sections must be 0 or more", file=sys.stderr)
         return EXIT_INPUT
     opts = Options(anions=anions, valence=valence, criterion=Criterion())
 
@@ -310,6 +317,11 @@ def run(args) -> int:
     if n_jobs > 1 and len(jobs) >= PARALLEL_FROM:
         from concurrent.futures import ProcessPoolExecutor
 
+        import matplotlib
+
+        matplotlib.use("Agg")
+        import matplotlib.pyplot  # noqa: F401  (loaded once, before the workers fork)
+
         with ProcessPoolExecutor(max_workers=n_jobs) as pool:
             for n, out in zip((j[0] for j in jobs), pool.map(figure_job, jobs, chunksize=2)):
                 drawn[n] = out
@@ -342,7 +354,7 @@ def run(args) -> int:
         title = f"bondcheck report: {Path(args.inputs[0]).name}"
     else:
         title = f"bondcheck report: {len(entries)} entries"
-    page = H.render(entries, title=title, settings=opts.key())
+    page = H.render(entries, title=title, settings=opts.key(), max_sections=args.max_sections)
     if args.output == "-":
         sys.stdout.write(page)
     else:

@@ -85,12 +85,20 @@ def _findings(row: dict) -> list[dict]:
 # Page
 
 
-def render(entries: Iterable[Entry], title: str = "bondcheck report", settings: str = "") -> str:
-    """The whole page as one string."""
+SECTION_RANK = {"error": 0, "mismatch": 1, "not-applicable": 2, "consistent": 3}
+
+
+def render(entries: Iterable[Entry], title: str = "bondcheck report", settings: str = "", max_sections: int | None = None) -> str:
+    """The whole page as one string. With more than `max_sections` entries,
+    only that many get a section (entries with figures, then errors,
+    mismatches, not applicable, consistent; input order within each); the
+    others are rows of the table and points of the scatter only."""
     from .. import __version__
 
     entries = list(entries)
-    anchors = [f"e{n + 1}" for n in range(len(entries))]
+    order = sorted(range(len(entries)), key=lambda n: (entries[n].detail is None, SECTION_RANK[_verdict_key(entries[n].row)], n))
+    keep = set(order if max_sections is None or len(entries) <= 1 else order[:max_sections])
+    anchors = [f"e{n + 1}" if n in keep else None for n in range(len(entries))]
     parts = [
         "<!DOCTYPE html>",
         '<html lang="en">',
@@ -115,7 +123,8 @@ def render(entries: Iterable[Entry], title: str = "bondcheck report", settings: 
     if len(entries) > 1:
         parts.append(_summary(entries, anchors))
     for entry, anchor in zip(entries, anchors):
-        parts.append(_section(entry, anchor, back=len(entries) > 1))
+        if anchor is not None:
+            parts.append(_section(entry, anchor, back=len(entries) > 1))
     parts += [
         "</main>",
         '<footer class="page">',
@@ -192,6 +201,13 @@ def _summary(entries: list[Entry], anchors: list[str]) -> str:
         "triangles: mismatch; diamonds: not applicable. Each point links to its entry.</figcaption></figure>"
     )
     out.append(f'<script type="application/json" id="bondcheck-points">{_json_island(island)}</script>')
+    hidden = sum(a is None for a in anchors)
+    if hidden:
+        out.append(
+            f'<p class="note">{hidden} of {len(rows)} entries are rows of the table and points of the scatter only, without a '
+            "section of their own (--max-sections); the sections kept are those with figures, then errors, mismatches, "
+            "entries with nothing to count, and consistent ones.</p>"
+        )
     out.append(_entries_table(entries, anchors, names))
     out.append("</section>")
     return "\n".join(out)
@@ -232,7 +248,7 @@ def _entries_table(entries: list[Entry], anchors: list[str], names: list[str]) -
         v = _verdict_key(r)
         cells = [
             (n + 1, str(n + 1)),
-            (name.lower(), f'<a href="#{a}">{esc(name)}</a>'),
+            (name.lower(), f'<a href="#{a}">{esc(name)}</a>' if a else esc(name)),
             (r.get("formula") or "", esc(r.get("formula") or "")),
             (r.get("spacegroup") or "", esc(r.get("spacegroup") or "")),
             (v, f'<span class="mark" aria-hidden="true">{_MARK[v]}</span> {esc(_TITLE[v].lower())}'),
@@ -242,7 +258,7 @@ def _entries_table(entries: list[Entry], anchors: list[str], names: list[str]) -
             x = r.get(key)
             cells.append((float(x) if _finite(x) else "", _f(x)))
         tds = "".join(f'<td data-sort="{esc(s)}">{h}</td>' for s, h in cells)
-        out.append(f'<tr class="v-{v}" data-verdict="{v}" data-anchor="{a}">{tds}</tr>')
+        out.append(f'<tr class="v-{v}" data-verdict="{v}">{tds}</tr>')
     out.append("</tbody></table></div>")
     return "\n".join(out)
 

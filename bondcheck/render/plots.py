@@ -651,7 +651,8 @@ def _finite(x) -> bool:
 
 def scatter_plot(rows: list[dict], anchors: list[str], names: list[str]) -> tuple[str, dict]:
     """AA observed against VEC per anion for every entry, with the line
-    AA = 8 - VEC. Each point links to the entry's section (anchors[n]).
+    AA = 8 - VEC. Each point links to the entry's section (anchors[n], None
+    for an entry without one).
     Returns the SVG and the axes box (for mapping points back to data)."""
     import matplotlib
 
@@ -682,7 +683,7 @@ def scatter_plot(rows: list[dict], anchors: list[str], names: list[str]) -> tupl
                 label=f"{label} ({len(sel)})",
                 gid=f"pts-{verdict}",
             )
-            col.set_urls([f"#{anchors[p['entry']]}" for p in sel])
+            col.set_urls([f"#{anchors[p['entry']]}" if anchors[p["entry"]] else None for p in sel])
         ys = [p["aa_observed"] for p in pts] or [0.0, 4.0]
         ylo, yhi = min(min(ys), 0.0), max(max(ys), 8 - lo, 1.0)
         pad = 0.05 * (yhi - ylo)
@@ -695,7 +696,7 @@ def scatter_plot(rows: list[dict], anchors: list[str], names: list[str]) -> tupl
         box = _axes_box(fig, ax)
         svg = _svg_text(fig, prefix="scatter")
     # A tooltip per point: the entry's name.
-    order = {f"#{anchors[p['entry']]}": p["entry"] for p in pts}
+    order = {f"#{anchors[p['entry']]}": p["entry"] for p in pts if anchors[p["entry"]]}
 
     def title(m):
         n = order.get(m.group(1))
