@@ -19,7 +19,7 @@ import numpy as np
 
 from . import elements
 from .bonds import Criterion, find_contacts, per_atom
-from .count import Count, count, target
+from .count import Count, _element_facts, count, target
 from .diagnose import diagnose
 from .record import Crystal, StructureError
 from .symmetry import find_sites
@@ -180,45 +180,81 @@ def _atom_label(crystal: Crystal, k: int) -> str:
     return lab or f"{elements.symbols()[int(crystal.numbers[k])]}{k + 1}"
 
 
+def _group_mean(x: np.ndarray, inv: np.ndarray, counts: np.ndarray) -> np.ndarray:
+    """Mean of x over each group, equal to np.mean of the group's values:
+    bincount adds in order as np.mean does below 8 values, and any order
+    gives the same sum of whole numbers."""
+    out = np.bincount(inv, weights=x, minlength=counts.size) / counts
+    if counts.max() >= 8 and not np.array_equal(x, np.rint(x)):
+        for g in np.flatnonzero(counts >= 8):
+            out[g] = np.mean(x[inv == g])
+    return out
+
+
+def _group_extreme(x: np.ndarray, inv: np.ndarray, ng: int, fn) -> np.ndarray:
+    """Smallest (fn=np.fmin) or largest (np.fmax) value per group ignoring
+    NaN; NaN where a group has none."""
+    out = np.full(ng, np.nan)
+    fn.at(out, inv, x)
+    return out
+
+
 def _site_rows(crystal, sites, c: Count | None, coord, nearest, last, first_out, fragile) -> list[dict]:
+    """One row per (site, element), in order of the first atom of each."""
     syms = elements.symbols()
+    numbers = crystal.numbers
+    key = sites.site.astype(np.int64) * 128 + numbers
+    uniq, first, inv = np.unique(key, return_index=True, return_inverse=True)
+    inv = inv.reshape(-1)
+    ng = uniq.size
+    counts = np.bincount(inv, minlength=ng)
+    occ = _group_mean(crystal.occupancy, inv, counts).tolist()
+    coordination = _group_mean(coord, inv, counts).tolist()
+    near = _group_extreme(nearest, inv, ng, np.fmin).tolist()
+    lastb = _group_extreme(last, inv, ng, np.fmax).tolist()
+    firstu = _group_extreme(first_out, inv, ng, np.fmin).tolist()
+    frag = (np.bincount(inv[fragile], minlength=ng) > 0).tolist()
+    site_of = (uniq // 128).tolist()
+    z_of = (uniq % 128).tolist()
+    mult = sites.multiplicity
+    if c is not None:
+        bonds = _group_mean(c.aa_bonds, inv, counts).tolist()
+        role_first = c.role[first].tolist()
+        group_first = c.group_of[first].tolist()
+        keep = c.closure.keep if c.closure.closes else {}
     rows = []
-    key = sites.site.astype(np.int64) * 128 + crystal.numbers
-    uniq, first = np.unique(key, return_index=True)
-    for u, k in sorted(zip(uniq, first), key=lambda t: t[1]):
-        atoms = key == u
-        s = int(u // 128)
-        z = int(u % 128)
-        sym = syms[z]
-        occ = float(np.mean(crystal.occupancy[atoms]))
+    for u in np.argsort(first, kind="stable").tolist():
+        k = int(first[u])
+        s = site_of[u]
+        sym, _block, valence, keep_opts = _element_facts(z_of[u])
         row = {
-            "label": _atom_label(crystal, int(k)),
+            "label": _atom_label(crystal, k),
             "element": sym,
-            "multiplicity": int(sites.multiplicity[s]),
+            "multiplicity": None if mult is None else int(mult[s]),
             "wyckoff": sites.wyckoff[s],
-            "occupancy": round(occ, 4),
+            "occupancy": round(occ[u], 4),
             "role": None,
-            "coordination": _r3(float(np.mean(coord[atoms]))),
+            "coordination": _r3(coordination[u]),
             "bonds": None,
             "formal_charge": None,
-            "nearest": _r3(float(np.nanmin(nearest[atoms])) if np.isfinite(nearest[atoms]).any() else None),
-            "last_bonded": _r3(float(np.nanmax(last[atoms])) if np.isfinite(last[atoms]).any() else None),
-            "first_unbonded": _r3(float(np.nanmin(first_out[atoms])) if np.isfinite(first_out[atoms]).any() else None),
-            "fragile": bool(fragile[atoms].any()),
+            "nearest": _r3(near[u]),
+            "last_bonded": _r3(lastb[u]),
+            "first_unbonded": _r3(firstu[u]),
+            "fragile": frag[u],
         }
         if c is not None:
-            anion = bool(c.role[k])
+            anion = role_first[u]
             row["role"] = "anion" if anion else "cation"
-            b = float(np.mean(c.aa_bonds[atoms]))
+            b = bonds[u]
             row["bonds"] = _r3(b)
             if anion:
-                row["formal_charge"] = _r3(b + elements.valence(sym) - target(sym))
+                row["formal_charge"] = _r3(b + valence - target(sym))
             else:
-                g = int(c.group_of[k])
-                if c.closure.closes and g in c.closure.keep:
-                    row["formal_charge"] = _r3(elements.valence(sym) - c.closure.keep[g])
-                elif elements.keep_options(sym) == {0: 0}:
-                    row["formal_charge"] = _r3(float(elements.valence(sym)))
+                g = group_first[u]
+                if g in keep:
+                    row["formal_charge"] = _r3(valence - keep[g])
+                elif keep_opts == {0: 0}:
+                    row["formal_charge"] = _r3(float(valence))
         row["gap"] = _r3(row["first_unbonded"] - row["last_bonded"]) if row["first_unbonded"] and row["last_bonded"] else None
         rows.append(row)
     return rows
