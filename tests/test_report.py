@@ -658,3 +658,67 @@ def test_substructure_viewer_turns(browser, reports):
     browser.js("document.querySelector('details.viewer button[data-view=\"c\"]').click()")
     assert float(browser.js(first)) == pytest.approx(before, abs=1e-3), "'down c' restores the first view"
     assert browser.problems() == []
+
+
+def test_text_from_files_is_escaped(json_rows):
+    """Names, formulas and messages come from files: whatever they hold, the
+    page keeps exactly its own elements (the rows are real rows of the JSON
+    output with their text fields replaced)."""
+    from hypothesis import HealthCheck, given, settings
+    from hypothesis import strategies as st
+
+    from bondcheck.render.html import Entry, render
+
+    base = [r for r in json_rows if r["status"] == "ok"][:2]
+
+    class Tags(HTMLParser):
+        def __init__(self):
+            super().__init__()
+            self.scripts = 0
+            self.sections = 0
+
+        def handle_starttag(self, tag, attrs):
+            self.scripts += tag == "script"
+            self.sections += tag == "section"
+
+    pieces = st.sampled_from(list("<>&\"'/ =ab\u00e9\u2212") + ["<script>", "</section>", "<!--", "]]>", "</script>"])
+    text = st.lists(pieces, max_size=12).map("".join)
+
+    @settings(max_examples=10, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+    @given(name=text, formula=text, message=text, label=text)
+    def check(name, formula, message, label):
+        rows = []
+        for r in base:
+            r = json.loads(json.dumps(r))
+            r["name"], r["formula"] = name, formula
+            for f in r["findings"]:
+                f["message"] = message
+                f["sites"] = [label]
+            for s in r["sites"]:
+                s["label"] = label
+            rows.append(r)
+        page = render([Entry(r) for r in rows])
+        t = Tags()
+        t.feed(page)
+        assert t.scripts == 2  # the data island and the page's script
+        assert t.sections == 1 + len(rows)  # the summary and one per entry
+
+    check()
+
+
+def test_rows_with_missing_or_odd_fields(json_rows):
+    """Rows from other tools may lack keys or carry a status such as 'timeout'."""
+    from bondcheck.commands.report import normalise_row
+    from bondcheck.render.html import Entry, render
+
+    real = next(r for r in json_rows if r["verdict"] == "mismatch")
+    rows = [
+        normalise_row({"path": real["path"], "status": "timeout", "error": "gave up after 5 s"}),
+        normalise_row({k: v for k, v in real.items() if k not in ("sites", "findings", "partition", "formula")}),
+        normalise_row({**real, "causes": "electron-excess;some-future-finding", "vec_anion": "6.0", "residual": ""}),
+    ]
+    page = render([Entry(r) for r in rows])
+    assert "gave up after 5 s" in page and "Not checked" in page
+    assert rows[2]["causes"] == ["electron-excess", "some-future-finding"]
+    assert rows[2]["vec_anion"] == 6.0 and rows[2]["residual"] is None
+    assert "some-future-finding" in page

@@ -42,9 +42,9 @@ def register(subparsers) -> None:
     p.add_argument(
         "--max-sections",
         type=int,
-        default=2000,
+        default=1000,
         metavar="N",
-        help="at most N entries get a section of their own, flagged ones first; the rest are rows of the table (default 2000)",
+        help="at most N entries get a section of their own, flagged ones first; the rest are rows of the table (default 1000)",
     )
     p.add_argument("--jobs", type=int, default=0, metavar="N", help="worker processes drawing figures (default: all cores)")
     p.add_argument("--anions", help="comma-separated anion elements for the structures checked here")
