@@ -15,6 +15,7 @@ import json
 import math
 import os
 import re
+import stat
 from functools import lru_cache
 from pathlib import Path
 from typing import Iterator, NamedTuple
@@ -22,6 +23,7 @@ from typing import Iterator, NamedTuple
 import gemmi
 import numpy as np
 
+from . import limits
 from .record import Crystal, StructureError
 
 __all__ = ["read", "iter_structure_files", "read_cif_bytes", "species", "cell_matrix",
@@ -34,6 +36,18 @@ __all__ = ["read", "iter_structure_files", "read_cif_bytes", "species", "cell_ma
 # apart.  Closer images are kept and left to the bond stage to report.
 MERGE_TOL = 0.1
 OCC_TOL = 1e-3
+
+# What no crystal does; beyond these the input is wrong (or hostile) and the
+# later stages would spend minutes on it.  Common practice, no source:
+# interplanar spacings of a unit cell's faces are an angstrom or more, the
+# densest solids (diamond, 0.18 atoms per cubic angstrom) stay well below
+# MAX_DENSITY, and cell edges of inorganic crystals stay below a few hundred
+# angstrom.
+MIN_WIDTH = 0.5           # angstrom, the smallest distance between opposite faces of the cell
+MAX_LENGTH = 1e5          # angstrom, a cell edge
+MAX_DENSITY = 1.0         # atoms (occupancy-weighted) per cubic angstrom
+MAX_ENTRY_DENSITY = 4.0   # entries (split and mixed sites counted each) per cubic angstrom
+MAX_FRACTIONAL = 1e3      # a fractional coordinate, before wrapping into the cell
 
 _ELEMENTS = (
     "H He Li Be B C N O F Ne Na Mg Al Si P S Cl Ar K Ca Sc Ti V Cr Mn Fe Co Ni "
@@ -57,24 +71,37 @@ _VASP_PREFIXES = ("POSCAR", "CONTCAR")
 # public API
 # --------------------------------------------------------------------------
 
-def read(source, *, block: str | None = None) -> list[Crystal]:
+def read(source, *, block: str | None = None, max_bytes: int | None = None,
+         max_atoms: int | None = None) -> list[Crystal]:
     """Read one structure source into a list of crystals.
 
     ``source`` is a path (str or Path), a pymatgen ``Structure``/``IStructure``,
     an ase ``Atoms`` or a :class:`Crystal` (returned as is).  A CIF file gives
     one crystal per data block holding atom sites; ``block`` selects one of
     them by name.  Anything that cannot be read raises :class:`StructureError`.
+
+    ``max_bytes`` (file size, uncompressed) and ``max_atoms`` (atoms in one
+    unit cell) override the limits in force (:mod:`bondcheck.limits`); an
+    input over a limit is turned away before the expensive work.
     """
+    lim = limits.current().but(max_bytes=max_bytes, max_atoms=max_atoms)
     try:
         if isinstance(source, Crystal):
             crystals = [source]
         elif isinstance(source, (str, os.PathLike)):
-            return _read_path(os.fspath(source), block)
+            return _read_path(os.fspath(source), block, lim)
         else:
             crystals = _read_object(source)
+            for c in crystals:
+                limits.check_atoms(c.natoms, lim.max_atoms)
+                _check_plausible(c)
         return _select(crystals, block)
     except StructureError:
         raise
+    except MemoryError:
+        raise StructureError("out of memory while reading (lower the limits or give more memory)") from None
+    except RecursionError:
+        raise StructureError("cannot read structure: nested too deeply") from None
     except Exception as exc:  # a last guard: callers only ever see StructureError
         raise StructureError(
             f"cannot read structure ({type(exc).__name__}: {_one_line(exc, 100)})") from exc
@@ -136,24 +163,34 @@ def _one_line(text: str, limit: int = 160) -> str:
 # files
 # --------------------------------------------------------------------------
 
-def _read_path(path: str, block: str | None) -> list[Crystal]:
+def _read_path(path: str, block: str | None, lim: limits.Limits) -> list[Crystal]:
     lname = os.path.basename(path).lower()
     if lname.endswith(_CIF_SUFFIXES):
-        return read_cif_bytes(_read_bytes(path), path, block=block)
+        return _cif_crystals(_read_bytes(path, lim.max_bytes), path, block, lim, keep_going=False)
     if lname.endswith((".json", ".json.gz")):
-        return _select(_read_pymatgen_json(Path(path)), block)
-    if not (os.path.basename(path).startswith(_VASP_PREFIXES)
-            or lname.endswith(_VASP_SUFFIXES + _XYZ_SUFFIXES)):
-        data = _read_bytes(path)
+        crystals = _read_pymatgen_json(Path(path), lim.max_bytes)
+    elif not (os.path.basename(path).startswith(_VASP_PREFIXES)
+              or lname.endswith(_VASP_SUFFIXES + _XYZ_SUFFIXES)):
+        data = _read_bytes(path, lim.max_bytes)
         if _looks_like_cif(data):
-            return read_cif_bytes(data, path, block=block)
-    return _select(_read_with_ase(Path(path)), block)
+            return _cif_crystals(data, path, block, lim, keep_going=False)
+        crystals = _read_with_ase(Path(path), lim.max_bytes, data)
+    else:
+        crystals = _read_with_ase(Path(path), lim.max_bytes)
+    for c in crystals:
+        limits.check_atoms(c.natoms, lim.max_atoms)
+        _check_plausible(c)
+    return _select(crystals, block)
 
 
-def _read_bytes(path) -> bytes:
+def _read_bytes(path, max_bytes: int) -> bytes:
+    """The file's bytes (gunzipped for ``*.gz``), read in chunks up to the limit."""
     try:
         with open(path, "rb") as fh:
-            data = fh.read()
+            st = os.fstat(fh.fileno())
+            if stat.S_ISREG(st.st_mode):
+                limits.check_size(st.st_size, max_bytes)
+            data = limits.read_capped(fh, max_bytes)
     except FileNotFoundError:
         raise StructureError(f"no such file: {path}") from None
     except IsADirectoryError:
@@ -161,10 +198,7 @@ def _read_bytes(path) -> bytes:
     except OSError as exc:
         raise StructureError(f"cannot read file: {exc.strerror or exc}") from None
     if str(path).lower().endswith(".gz"):
-        try:
-            data = gzip.decompress(data)
-        except Exception as exc:  # OSError, EOFError or zlib.error
-            raise StructureError(f"corrupt gzip file: {_one_line(exc)}") from None
+        data = limits.gunzip_capped(data, max_bytes)
     return data
 
 
@@ -216,6 +250,11 @@ def _cif_syntax_error(exc: Exception) -> StructureError:
     if m:
         where = f" (line {m.group(1)})"
         msg = msg[m.end():]
+    elif msg.startswith("string:"):
+        msg = msg[len("string:"):].lstrip()
+    dup = re.match(r"in data_(\S*): (duplicate tag \S+)", msg)
+    if dup:  # 'in data_x: duplicate tag _y'
+        msg = f"{dup.group(2)} in data block '{dup.group(1)}'"
     if "wrong number of values in loop" in low:
         kind = "truncated CIF or broken loop"
         where = where.replace("(line", "(loop at line")
@@ -229,22 +268,82 @@ def _cif_syntax_error(exc: Exception) -> StructureError:
     return StructureError(f"{kind}: {msg}{where}")
 
 
-def read_cif_bytes(data: bytes, source: str = "", *, block: str | None = None) -> list[Crystal]:
-    """Read CIF content (bytes or str) into one crystal per block with atoms."""
-    text = data if isinstance(data, str) else _decode(data)
-    if not text.strip(" \t\r\n\x0b\x0c\x1a"):
-        raise StructureError("empty file")
+def read_cif_bytes(data: bytes, source: str = "", *, block: str | None = None,
+                   max_bytes: int | None = None, max_atoms: int | None = None) -> list[Crystal]:
+    """Read CIF content (bytes or str) into one crystal per block with atoms.
+
+    A block that cannot be read makes the whole call fail (the message names
+    the block); :func:`read_blocks` keeps the good blocks instead.
+    """
+    out = _cif_crystals(data, source, block, limits.current().but(max_bytes=max_bytes, max_atoms=max_atoms),
+                        keep_going=False)
+    return out  # type: ignore[return-value]
+
+
+def read_blocks(source, *, block: str | None = None, max_bytes: int | None = None,
+                max_atoms: int | None = None) -> list[Crystal | StructureError]:
+    """Like :func:`read`, but a file with several data blocks gives one item per
+    block: the crystal, or the :class:`StructureError` of a block that cannot be
+    read (its ``source`` attribute is ``path#block``), so that one bad block
+    does not cost the others.  Errors of the file as a whole still raise.
+    """
+    lim = limits.current().but(max_bytes=max_bytes, max_atoms=max_atoms)
+    if isinstance(source, (str, os.PathLike)):
+        path = os.fspath(source)
+        lname = os.path.basename(path).lower()
+        try:
+            if lname.endswith(_CIF_SUFFIXES):
+                return _cif_crystals(_read_bytes(path, lim.max_bytes), path, block, lim, keep_going=True)
+            if not (lname.endswith((".json", ".json.gz") + _VASP_SUFFIXES + _XYZ_SUFFIXES)
+                    or os.path.basename(path).startswith(_VASP_PREFIXES)):
+                data = _read_bytes(path, lim.max_bytes)
+                if _looks_like_cif(data):
+                    return _cif_crystals(data, path, block, lim, keep_going=True)
+        except StructureError:
+            raise
+        except MemoryError:
+            raise StructureError("out of memory while reading (lower the limits or give more memory)") from None
+        except Exception as exc:
+            raise StructureError(
+                f"cannot read structure ({type(exc).__name__}: {_one_line(exc, 100)})") from exc
+    return list(read(source, block=block, max_bytes=lim.max_bytes, max_atoms=lim.max_atoms))
+
+
+def _parse_cif(text: str) -> tuple[object, dict]:
+    """gemmi's document for the text, after mending the slips that are common
+    in files from the wild; the notes say what was mended."""
+    notes: dict = {}
     repairs = 0
     while True:
         try:
-            doc = gemmi.cif.read_string(text)
-            break
+            return gemmi.cif.read_string(text), notes
         except Exception as exc:  # gemmi raises ValueError/RuntimeError on syntax errors
-            fixed = _close_quote(text, exc) if repairs < _MAX_REPAIRS else None
+            fixed = None
+            if repairs < _MAX_REPAIRS:
+                fixed = _close_quote(text, exc)
+                if fixed is not None:
+                    notes["quote_repairs"] = notes.get("quote_repairs", 0) + 1
+                elif "preamble_lines" not in notes:
+                    fixed, n = _skip_preamble(text, exc)
+                    if fixed is not None:
+                        notes["preamble_lines"] = n
+                if fixed is None and "renamed_blocks" not in notes:
+                    fixed, renamed = _rename_duplicate_blocks(text, exc)
+                    if fixed is not None:
+                        notes["renamed_blocks"] = renamed
             if fixed is None:
                 raise _cif_syntax_error(exc) from None
             text = fixed
             repairs += 1
+
+
+def _cif_crystals(data, source: str, block: str | None, lim: limits.Limits,
+                  keep_going: bool) -> list:
+    limits.check_size(len(data), lim.max_bytes, "CIF content")
+    text = data if isinstance(data, str) else _decode(data)
+    if not text.strip(" \t\r\n\x0b\x0c\x1a"):
+        raise StructureError("empty file")
+    doc, notes = _parse_cif(text)
     if len(doc) == 0:
         raise StructureError("not a CIF file: no data_ block")
 
@@ -263,22 +362,28 @@ def read_cif_bytes(data: bytes, source: str = "", *, block: str | None = None) -
         raise StructureError(f"no atom sites in any of the {len(doc)} data blocks")
 
     several = len(blocks) > 1 or len(doc) > 1
-    crystals = []
+    crystals: list = []
     for b in blocks:
         src = f"{source}#{b.name}" if several else source
         try:
-            crystals.append(_crystal_from_block(b, src))
+            try:
+                c = _crystal_from_block(b, src, lim.max_atoms)
+            except StructureError:
+                raise
+            except MemoryError:
+                raise StructureError("out of memory while reading this block") from None
+            except Exception as exc:  # anything unforeseen still becomes a StructureError
+                raise StructureError(
+                    f"unreadable CIF block ({type(exc).__name__}: {_one_line(exc, 100)})") from None
         except StructureError as exc:
-            if several:
-                raise StructureError(f"data block '{b.name}': {exc}") from None
-            raise
-        except Exception as exc:  # anything unforeseen still becomes a StructureError
-            where = f"data block '{b.name}': " if several else ""
-            raise StructureError(
-                f"{where}unreadable CIF block ({type(exc).__name__}: {_one_line(exc, 100)})") from None
-    if repairs:
-        for c in crystals:
-            c.meta["quote_repairs"] = repairs
+            err = StructureError(f"data block '{b.name}': {exc}") if several else exc
+            if not (keep_going and several):
+                raise err from None
+            err.source = src
+            crystals.append(err)
+            continue
+        c.meta.update(notes)
+        crystals.append(c)
     return crystals
 
 
@@ -324,6 +429,62 @@ def _close_quote(text: str, exc: Exception) -> str | None:
             while i < n and line[i] not in " \t":
                 i += 1
     return None
+
+
+_BLOCK_HEADER = re.compile(r"^[ \t]*(?:data_|global_)", re.IGNORECASE | re.MULTILINE)
+
+
+def _skip_preamble(text: str, exc: Exception) -> tuple[str | None, int]:
+    """Comment out lines before the first block header.
+
+    Some databases and programs put a copyright or banner line without '#'
+    at the top of a file.  When gemmi stops there, the lines before the first
+    ``data_`` become comments (so line numbers stay as they are).
+    Returns (None, 0) when the error is of another kind or there is no header.
+    """
+    if "expected block header" not in str(exc):
+        return None, 0
+    m = _BLOCK_HEADER.search(text)
+    if m is None or m.start() == 0:
+        return None, 0
+    head = text[:m.start()].split("\n")
+    n = 0
+    for k, line in enumerate(head[:-1]):
+        if line.strip() and not line.lstrip().startswith("#"):
+            head[k] = "#" + line
+            n += 1
+    if n == 0:
+        return None, 0
+    return "\n".join(head) + text[m.start():], n
+
+
+_DATA_HEADER = re.compile(r"^([ \t]*data_)(\S*)", re.IGNORECASE | re.MULTILINE)
+
+
+def _rename_duplicate_blocks(text: str, exc: Exception) -> tuple[str | None, list[str]]:
+    """Give repeated block names (files written by concatenation) a suffix:
+    the second 'data_x' becomes 'data_x_2'.  Block names are case-insensitive."""
+    if "duplicate block name" not in str(exc):
+        return None, []
+    seen: set[str] = set()
+    renamed: list[str] = []
+
+    def fix(m: re.Match) -> str:
+        name = m.group(2)
+        key = name.lower()
+        if key not in seen:
+            seen.add(key)
+            return m.group(0)
+        k = 2
+        while f"{key}_{k}" in seen:
+            k += 1
+        new = f"{name}_{k}"
+        seen.add(new.lower())
+        renamed.append(new)
+        return m.group(1) + new
+
+    fixed = _DATA_HEADER.sub(fix, text)
+    return (fixed, renamed) if renamed else (None, [])
 
 
 _ATOM_KEYS = ("_atom_site_fract_x", "_atom_site.fract_x", "_atom_site_label",
@@ -441,6 +602,10 @@ def cell_matrix(a: float, b: float, c: float,
     if not (0 < a < math.inf and 0 < b < math.inf and 0 < c < math.inf):
         name, x = next((k, v) for k, v in zip("abc", (a, b, c)) if not 0 < v < math.inf)
         raise StructureError(f"bad unit cell: length {name} = {x:g} is not positive")
+    if max(a, b, c) > MAX_LENGTH:
+        name, x = next((k, v) for k, v in zip("abc", (a, b, c)) if v > MAX_LENGTH)
+        raise StructureError(f"bad unit cell: length {name} = {x:g} A is implausibly long "
+                             f"(over {MAX_LENGTH:g} A)")
     if not (0 < alpha < 180 and 0 < beta < 180 and 0 < gamma < 180):
         name, x = next((k, v) for k, v in zip(("alpha", "beta", "gamma"), (alpha, beta, gamma))
                        if not 0 < v < 180)
@@ -461,6 +626,48 @@ def cell_matrix(a: float, b: float, c: float,
     return np.array([[a, 0.0, 0.0],
                      [b * cg, b * sg, 0.0],
                      [c * cb, c * cy, c * math.sqrt(cz2)]])
+
+
+def _check_widths(cell: np.ndarray) -> tuple[float, list[float]]:
+    """The volume of a cell and its widths; reject a cell that is nearly flat.
+
+    The width across each pair of opposite faces is V / |face|; a width
+    below MIN_WIDTH means atoms sit on top of their own periodic images (and
+    makes a neighbour search visit an enormous number of images).
+    """
+    (ax, ay, az), (bx, by, bz), (cx, cy, cz) = cell.tolist()
+    faces = []
+    for (ux, uy, uz), (vx, vy, vz) in (((bx, by, bz), (cx, cy, cz)), ((cx, cy, cz), (ax, ay, az)),
+                                       ((ax, ay, az), (bx, by, bz))):
+        faces.append(math.sqrt((uy * vz - uz * vy) ** 2 + (uz * vx - ux * vz) ** 2 + (ux * vy - uy * vx) ** 2))
+    vol = abs(ax * (by * cz - bz * cy) - ay * (bx * cz - bz * cx) + az * (bx * cy - by * cx))
+    if not (vol > 0 and math.isfinite(vol) and all(f > 0 and math.isfinite(f) for f in faces)):
+        raise StructureError("impossible unit cell: it has no volume")
+    widths = [vol / f for f in faces]
+    w = min(widths)
+    if not w >= MIN_WIDTH:
+        k = widths.index(w)
+        raise StructureError(
+            f"impossible unit cell: only {w:.3g} A between the faces across {'abc'[k]} "
+            f"(under {MIN_WIDTH:g} A; check the cell angles)")
+    return vol, widths
+
+
+def _check_density(vol: float, occ: np.ndarray) -> None:
+    """Reject more atoms per volume than any solid holds (lengths in nm, say)."""
+    n = len(occ)
+    weighted = float(occ.sum())
+    if weighted > MAX_DENSITY * vol or n > MAX_ENTRY_DENSITY * vol:
+        raise StructureError(
+            f"implausible cell: {weighted:.4g} atoms in {vol:.4g} A^3 ({weighted / vol:.3g} per A^3, "
+            "solids hold at most about 0.2; lengths in nm instead of A?)")
+
+
+def _check_plausible(c: Crystal) -> None:
+    """The checks of a CIF's cell, for crystals from other formats and objects."""
+    if c.natoms:
+        vol, _ = _check_widths(c.cell)
+        _check_density(vol, c.occupancy)
 
 
 # ---- elements and charges -------------------------------------------------
@@ -534,6 +741,7 @@ _NUMBER_TAGS = ("_space_group_IT_number", "_space_group.IT_number",
                 "_symmetry_Int_Tables_number", "_symmetry.Int_Tables_number")
 
 _DEN = 24  # gemmi's denominator for symmetry operations
+_MAX_OPS = 192  # operations of the largest space groups (F m -3 m and others), lattice translations aside
 
 
 def _encode(rot: np.ndarray, tran: np.ndarray) -> np.ndarray:
@@ -564,6 +772,9 @@ def _group(ops: list[gemmi.Op]) -> _Group:
     first.sort()
     rot, tran, keys = rot[first], tran[first], keys[first]
     n_given = len(keys)
+    if n_given > _MAX_OPS:
+        raise StructureError(f"{n_given} different symmetry operations: more than a space group "
+                             f"has ({_MAX_OPS})")
     for _ in range(8):
         r2 = np.einsum("iab,jbc->ijac", rot, rot).reshape(-1, 3, 3)
         t2 = (np.einsum("iab,jb->ija", rot, tran) + tran[:, None, :]).reshape(-1, 3) % _DEN
@@ -577,7 +788,7 @@ def _group(ops: list[gemmi.Op]) -> _Group:
         rot = np.concatenate([rot, r2[new][idx]])
         tran = np.concatenate([tran, t2[new][idx]])
         keys = np.concatenate([keys, k_new])
-        if len(keys) > 192:
+        if len(keys) > _MAX_OPS:
             raise StructureError("symmetry operators do not form a space group")
     else:
         raise StructureError("symmetry operators do not form a space group")
@@ -598,6 +809,9 @@ def _group(ops: list[gemmi.Op]) -> _Group:
 
 @lru_cache(maxsize=4096)
 def _group_from_triplets(triplets: tuple[str, ...], centerings: tuple[str, ...] = ()):
+    if len(triplets) * max(1, len(centerings)) > 8 * _MAX_OPS and \
+            len(set(triplets)) * max(1, len(set(centerings))) > _MAX_OPS:
+        raise StructureError(f"{len(triplets)} symmetry operators listed: more than a space group has")
     ops = []
     for trip in triplets:
         t = _unquote(trip).strip()
@@ -674,6 +888,8 @@ def _symmetry(block, alpha: float, gamma: float):
         try:
             sg = gemmi.find_spacegroup_by_number(int(_num(number)))
         except (RuntimeError, ValueError, OverflowError):
+            sg = None
+        if sg is None:
             raise StructureError(f"unknown space group number {_unquote(number)!r}") from None
         name, how = sg.hm, "number"
     else:
@@ -745,6 +961,92 @@ def _expand(frac: np.ndarray, cell: np.ndarray, group: _Group,
     return _wrap(pos[site, image]), site
 
 
+def _count_images(frac: np.ndarray, cell: np.ndarray, group: _Group) -> int:
+    """How many atoms :func:`_expand` would give, counted in chunks of sites so
+    that a huge cell is turned away without building it: a site whose images
+    fall together in groups of k (its site-symmetry order) gives m / k atoms."""
+    rot, tran = group.rot, group.tran
+    m = len(rot)
+    metric = cell @ cell.T
+    step = max(1, 2_000_000 // (3 * m))
+    total = 0
+    for s in range(0, len(frac), step):
+        f = frac[s:s + step]
+        d = np.einsum("kij,nj->nki", rot, f) + tran - f[:, None, :]
+        d -= np.rint(d)
+        k = (np.einsum("...i,ij,...j->...", d, metric, d) < MERGE_TOL ** 2).sum(1)
+        total += int(np.ceil(m / np.maximum(k, 1)).sum())
+    return total
+
+
+_NEIGHBOUR_BINS = np.array(np.meshgrid([-1, 0, 1], [-1, 0, 1], [-1, 0, 1], indexing="ij")).reshape(3, -1).T
+_FEW = 64  # up to this many atoms, every pair is looked at
+
+
+@lru_cache(maxsize=_FEW + 1)
+def _pairs(n: int) -> tuple[np.ndarray, np.ndarray]:
+    rows, cols = np.triu_indices(n, 1)
+    rows.setflags(write=False)
+    cols.setflags(write=False)
+    return rows, cols
+
+
+def _duplicates(pos: np.ndarray, cell: np.ndarray, widths: list[float], numbers: np.ndarray,
+                occ: np.ndarray) -> np.ndarray | None:
+    """Atoms that repeat an earlier atom of the same element within MERGE_TOL
+    when the two together are more than one atom (occupancies summing over 1):
+    a site written twice, a P 1 file listing an atom on a cell face and its
+    copy on the opposite face, or an atom listed with all its images as well
+    as the operators that make them.  Returns a mask of the later copies, or
+    None when there are none (the usual case, decided cheaply).
+
+    Nearest images by rounding fractional differences are exact here: two
+    atoms within MERGE_TOL are less than MERGE_TOL / MIN_WIDTH = 0.2 apart in
+    each fractional coordinate.  Beyond _FEW atoms, the cell is cut into bins
+    at least MERGE_TOL wide along each axis, and only atoms in the same or
+    neighbouring bins are compared.
+    """
+    n = len(pos)
+    if n < 2:
+        return None
+    if n <= _FEW:
+        rows, cols = _pairs(n)
+        sel = numbers[cols] == numbers[rows]
+    else:
+        nb = np.array([max(1, min(int(w / MERGE_TOL), 1 << 20)) for w in widths], dtype=np.int64)
+        b = np.minimum((pos * nb).astype(np.int64), nb - 1)
+        mult = np.array([nb[1] * nb[2], nb[2], 1], dtype=np.int64)
+        key = b @ mult
+        order = np.argsort(key, kind="stable")
+        sk = key[order]
+        q = ((b[None, :, :] + _NEIGHBOUR_BINS[:, None, :]) % nb) @ mult   # (27, n)
+        lo = np.searchsorted(sk, q, "left")
+        cnt = (np.searchsorted(sk, q, "right") - lo).ravel()
+        if int(cnt.sum()) == n:  # each atom alone in its bin and the bins around it
+            return None
+        # candidate pairs: each atom with the atoms of its neighbouring bins
+        # (with fewer than three bins along an axis a pair may come twice: harmless)
+        rows = np.repeat(np.tile(np.arange(n), len(q)), cnt)
+        within = np.arange(len(rows)) - np.repeat(np.cumsum(cnt) - cnt, cnt)
+        cols = order[np.repeat(lo.ravel(), cnt) + within]
+        sel = (cols > rows) & (numbers[cols] == numbers[rows])
+    if not sel.any():
+        return None
+    rows, cols = rows[sel], cols[sel]
+    d = pos.take(cols, 0) - pos.take(rows, 0)
+    d -= np.rint(d)
+    d = d @ cell
+    near = (d * d).sum(1) < MERGE_TOL ** 2
+    if not near.any():
+        return None
+    near &= occ[rows] + occ[cols] > 1.0 + OCC_TOL
+    if not near.any():
+        return None
+    dup = np.zeros(n, dtype=bool)
+    dup[cols[near]] = True
+    return dup
+
+
 def _wrap(frac: np.ndarray) -> np.ndarray:
     """Fractional coordinates into [0, 1), C-contiguous."""
     frac = np.subtract(frac, np.floor(frac), order="C")
@@ -780,7 +1082,7 @@ def _filled(n: int, value: float) -> np.ndarray:
     return a
 
 
-def _crystal_from_block(block, source: str) -> Crystal:
+def _crystal_from_block(block, source: str, max_atoms: int = limits.MAX_ATOMS) -> Crystal:
     tags, values = _atom_loop(block)
     ncol = len(tags)
     nrow = len(values) // ncol if ncol else 0
@@ -809,6 +1111,9 @@ def _crystal_from_block(block, source: str) -> Crystal:
         xs, ys, zs, labels, types, occ_raw = map(pick, (xs, ys, zs, labels, types, occ_raw))
         nrow = len(rows)
 
+    if nrow > max_atoms:  # every site gives at least one atom
+        limits.check_atoms(nrow, max_atoms, at_least=True)
+
     joined = "".join(labels)
     if "'" in joined or '"' in joined or ";" in joined:
         labels = [_unquote(v) for v in labels]
@@ -824,7 +1129,12 @@ def _crystal_from_block(block, source: str) -> Crystal:
     if not finite:
         bad = next(i for i, v in enumerate(vals) if not math.isfinite(v)) // 3
         raise StructureError(f"missing or unreadable coordinates for site '{labels[bad]}'")
-    inside = min(vals) >= 0.0 and max(vals) < 1.0
+    lo, hi = min(vals), max(vals)
+    inside = lo >= 0.0 and hi < 1.0
+    if not inside and max(-lo, hi) > MAX_FRACTIONAL:
+        bad = next(i for i, v in enumerate(vals) if abs(v) > MAX_FRACTIONAL)
+        raise StructureError(f"fractional coordinate {vals[bad]:g} of site '{labels[bad // 3]}' "
+                             "is far outside the cell")
     frac = np.array(vals).reshape(nrow, 3)
 
     occ = _occupancies(occ_raw, nrow, labels)
@@ -832,8 +1142,12 @@ def _crystal_from_block(block, source: str) -> Crystal:
 
     a, b, c, alpha, beta, gamma = _cif_cell(block)
     cell = cell_matrix(a, b, c, alpha, beta, gamma)
+    vol, widths = _check_widths(cell)
 
     candidates, hm, how = _symmetry(block, alpha, gamma)
+    m = max(len(group.rot) for group, _ in candidates)
+    if nrow * m > max_atoms:  # count before expanding
+        limits.check_atoms(min(_count_images(frac, cell, group) for group, _ in candidates), max_atoms)
     best = None
     for group, setting in candidates:
         pos, site = _expand(frac, cell, group, inside)
@@ -851,7 +1165,14 @@ def _crystal_from_block(block, source: str) -> Crystal:
     labels = np.array(labels)
     if site is not None:
         numbers, occ, labels, charges = numbers[site], occ[site], labels[site], charges[site]
+    limits.check_atoms(len(pos), max_atoms)
     meta = {"format": "cif", "spacegroup": hm, "symmetry": how, "nsymops": nops}
+    dup = _duplicates(pos, cell, widths, numbers, occ)
+    if dup is not None:
+        keep = ~dup
+        meta["merged_duplicates"] = int(dup.sum())
+        pos, numbers, occ, labels, charges = pos[keep], numbers[keep], occ[keep], labels[keep], charges[keep]
+    _check_density(vol, occ)
     if setting:
         meta["setting"] = setting
     if completed:
@@ -964,7 +1285,7 @@ def _read_object(obj) -> list[Crystal]:
     raise StructureError(f"cannot read an object of type {type(obj).__name__}")
 
 
-def _read_with_ase(path: Path) -> list[Crystal]:
+def _read_with_ase(path: Path, max_bytes: int, data: bytes | None = None) -> list[Crystal]:
     import ase.io
 
     lname = path.name.lower()
@@ -973,7 +1294,8 @@ def _read_with_ase(path: Path) -> list[Crystal]:
         fmt = "vasp"
     elif lname.endswith(_XYZ_SUFFIXES):
         fmt = "extxyz"
-    data = _read_bytes(path)
+    if data is None:
+        data = _read_bytes(path, max_bytes)
     if not data.strip():
         raise StructureError("empty file")
     _decode(data)  # rejects binary junk with a clear message
@@ -1084,8 +1406,8 @@ def _check_occupancy(occ: np.ndarray, labels) -> None:
         raise StructureError(f"occupancy {occ[i]:g}{site} {what}")
 
 
-def _read_pymatgen_json(path: Path) -> list[Crystal]:
-    data = _read_bytes(path)
+def _read_pymatgen_json(path: Path, max_bytes: int) -> list[Crystal]:
+    data = _read_bytes(path, max_bytes)
     if not data.strip():
         raise StructureError("empty file")
     text = _decode(data)
