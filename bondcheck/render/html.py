@@ -303,16 +303,16 @@ def _banner(r: dict, v: str) -> str:
         if why:
             words += " " + " ".join(esc(_sentence(w)) for w in why)
     elif v == "mismatch":
+        words = "The electron count does not close."
+        rank = {"error": 0, "warning": 1}
+        why = [f["message"] for f in sorted(finds, key=lambda f: rank.get(f.get("severity"), 2)) if f.get("slug") in causes]
         res = r.get("residual")
-        if _finite(res) and float(res) > 0:
-            words = f"The electron count does not close: {_f(res)} electrons per anion are left over."
-        elif _finite(res):
-            words = f"The electron count does not close: {_f(-float(res))} electrons per anion are missing."
-        else:
-            words = "The electron count does not close."
-        why = [f["message"] for f in finds if f.get("slug") in causes and f.get("severity") != "info"]
         if why:
             words += " " + " ".join(esc(_sentence(w)) for w in why)
+        elif _finite(res) and float(res) > 0:
+            words += f" {_f(res)} electrons per anion are left over."
+        elif _finite(res):
+            words += f" {_f(-float(res))} electrons per anion are missing."
     else:
         why = [f["message"] for f in finds if f.get("slug") in causes]
         words = "Nothing to count." + ("".join(" " + esc(_sentence(w)) for w in why))
