@@ -19,7 +19,6 @@ accounted for in the scan like any other.
 from __future__ import annotations
 
 import glob
-import gzip
 import hashlib
 import os
 import re
@@ -188,11 +187,21 @@ def _one_path(path: str, load: bool) -> Iterator[Entry]:
     elif not load:
         yield Entry(path, name, path=path)
     else:
+        from .limits import current, read_capped, size_error
+        from .record import StructureError
+
+        cap = current().max_bytes
         try:
             with open(path, "rb") as fh:
-                data = fh.read()
+                size = os.fstat(fh.fileno()).st_size
+                if size > cap:
+                    raise size_error(size, cap)
+                data = read_capped(fh, cap)
         except OSError as exc:
             yield Entry(path, name, path=path, error=f"cannot read file: {exc.strerror or exc}")
+            return
+        except StructureError as exc:
+            yield Entry(path, name, path=path, error=str(exc))
             return
         yield Entry(path, name, data=data, path=path)
 
@@ -201,15 +210,47 @@ def _member_entry(archive: str, member: str, data: bytes | None) -> Entry:
     return Entry(f"{archive}::{member}", member.rsplit("/", 1)[-1], data=data)
 
 
+_DRIVE = re.compile(r"^[A-Za-z]:")
+
+
 def _member_wanted(member: str) -> tuple[bool, str | None]:
-    """(take it, error) for an archive member name."""
-    parts = member.split("/")
+    """(take it, error) for an archive member name.
+
+    Names that would lead out of the archive's folder if it were unpacked
+    (absolute, with a drive letter, or with '..' parts) are reported, never
+    read: nothing is written to disk in any case, but such an archive is
+    broken or hostile and its owner should know."""
+    parts = member.replace("\\", "/").split("/")
+    base = parts[-1]
+    if member.startswith(("/", "\\")) or _DRIVE.match(member) or ".." in parts:
+        if _is_structure_name(base) or _is_archive(base) or _is_db(base):
+            return True, "unsafe member name (absolute or with '..', leads outside the archive): not read"
+        return False, None
     if any(p.startswith(".") or p == "__MACOSX" for p in parts if p):
         return False, None
-    base = parts[-1]
     if _is_archive(base) or _is_db(base):
         return True, "an archive or database inside an archive is not read: unpack it first"
     return _is_structure_name(base), None
+
+
+_LINK_ERROR = "a link inside an archive is not followed: store the file itself"
+
+
+def _over(what: str, path: str, limit_name: str, message: str) -> Entry:
+    return Entry(f"{path}::", os.path.basename(path), error=f"{what} {message} (raise it with {limit_name})")
+
+
+def _zip_entry_count(path: str) -> int | None:
+    """Members of a zip archive as its end record says, read before the central
+    directory is (which costs memory for each member); None if unknown."""
+    import zipfile
+
+    try:
+        with open(path, "rb") as fh:
+            end = zipfile._EndRecData(fh)  # the standard library's own reader of the end record
+    except (AttributeError, OSError, ValueError):
+        return None
+    return int(end[4]) if end else None  # _ECD_ENTRIES_TOTAL
 
 
 def _archive(path: str, load: bool) -> Iterator[Entry]:
@@ -222,30 +263,61 @@ def _archive(path: str, load: bool) -> Iterator[Entry]:
 def _zip(path: str, load: bool) -> Iterator[Entry]:
     import zipfile
 
+    from .limits import current, read_capped, size_error
+    from .record import StructureError
+
+    lim = current()
+    n = _zip_entry_count(path)
+    if n is not None and n > lim.max_archive_entries:
+        yield _over("zip archive", path, "BONDCHECK_MAX_ARCHIVE_ENTRIES",
+                    f"holds {n:,} members, over the limit of {lim.max_archive_entries:,}: not read")
+        return
     try:
         zf = zipfile.ZipFile(path)
     except (OSError, zipfile.BadZipFile) as exc:
         yield Entry(path, os.path.basename(path), error=f"cannot open zip archive: {exc}")
         return
+    total = 0
     with zf:
-        for info in zf.infolist():
+        infos = zf.infolist()
+        if len(infos) > lim.max_archive_entries:
+            yield _over("zip archive", path, "BONDCHECK_MAX_ARCHIVE_ENTRIES",
+                        f"holds {len(infos):,} members, over the limit of {lim.max_archive_entries:,}: not read")
+            return
+        for info in infos:
             if info.is_dir():
                 continue
             take, err = _member_wanted(info.filename)
             if not take:
                 continue
+            if not err and (info.external_attr >> 16) & 0o170000 == 0o120000:
+                err = _LINK_ERROR
+            if not err and info.file_size > lim.max_bytes:
+                err = str(size_error(info.file_size, lim.max_bytes, "archive member"))
             if err or not load:
                 e = _member_entry(path, info.filename, None)
                 e.error = err
                 yield e
                 continue
+            if total + info.file_size > lim.max_archive_bytes:
+                yield _over("zip archive", path, "BONDCHECK_MAX_ARCHIVE_GB",
+                            f"expands past the limit of {lim.max_archive_bytes / 2**30:g} GB: "
+                            "the members from here on are not read")
+                return
             try:
-                data = zf.read(info)
+                with zf.open(info) as fh:
+                    data = read_capped(fh, lim.max_bytes, "archive member")
+            except StructureError as exc:  # it holds more than it declared
+                e = _member_entry(path, info.filename, None)
+                e.error = str(exc)
+                yield e
+                continue
             except Exception as exc:  # CRC errors, unsupported compression, truncation
                 e = _member_entry(path, info.filename, None)
                 e.error = f"cannot read archive member: {exc}"
                 yield e
                 continue
+            total += len(data)
             yield _member_entry(path, info.filename, data)
 
 
@@ -257,21 +329,41 @@ def _tar(path: str, load: bool) -> Iterator[Entry]:
     except (OSError, tarfile.TarError) as exc:
         yield Entry(path, os.path.basename(path), error=f"cannot open tar archive: {exc}")
         return
+    from .limits import current, read_capped, size_error
+
+    lim = current()
+    count = total = 0
     with tf:
         try:
             for m in tf:
-                if not m.isfile():
+                count += 1
+                total += max(0, m.size)  # a stream inflates what it skips, too
+                if count > lim.max_archive_entries:
+                    yield _over("tar archive", path, "BONDCHECK_MAX_ARCHIVE_ENTRIES",
+                                f"holds more than {lim.max_archive_entries:,} members: the rest are not read")
+                    return
+                if total > lim.max_archive_bytes:
+                    yield _over("tar archive", path, "BONDCHECK_MAX_ARCHIVE_GB",
+                                f"expands past the limit of {lim.max_archive_bytes / 2**30:g} GB: "
+                                "the members from here on are not read")
+                    return
+                link = m.issym() or m.islnk()
+                if not (m.isfile() or link):
                     continue
                 take, err = _member_wanted(m.name)
                 if not take:
                     continue
+                if not err and link:
+                    err = _LINK_ERROR
+                if not err and m.size > lim.max_bytes:
+                    err = str(size_error(m.size, lim.max_bytes, "archive member"))
                 if err or not load:
                     e = _member_entry(path, m.name, None)
                     e.error = err
                     yield e
                     continue
                 fh = tf.extractfile(m)
-                yield _member_entry(path, m.name, fh.read() if fh else b"")
+                yield _member_entry(path, m.name, read_capped(fh, lim.max_bytes, "archive member") if fh else b"")
         except (OSError, EOFError, tarfile.TarError) as exc:
             yield Entry(f"{path}::", os.path.basename(path),
                         error=f"tar archive is corrupt or truncated after the entries above: {exc}")
@@ -345,10 +437,9 @@ def load_crystals(entry: Entry) -> list:
         return read(entry.path)
     lname = name.lower()
     if lname.endswith(".gz") and lname[:-3].endswith(_CIF_SUFFIXES):
-        try:
-            data = gzip.decompress(data)
-        except (OSError, EOFError, ValueError) as exc:
-            raise StructureError(f"corrupt gzip file: {exc}") from None
+        from .limits import current, gunzip_capped
+
+        data = gunzip_capped(data, current().max_bytes)
         lname = lname[:-3]
     if lname.endswith(_CIF_SUFFIXES) or (
         not lname.endswith(_OTHER_TEXT) and not name.startswith(("POSCAR", "CONTCAR"))
@@ -367,8 +458,10 @@ def _read_via_file(entry: Entry, data: bytes) -> list:
 
     from .read import read
 
+    # only the base name, and never one that leads out of the folder
+    base = entry.name.replace("\\", "/").rsplit("/", 1)[-1].lstrip(".") or "entry"
     with tempfile.TemporaryDirectory(prefix="bondcheck-") as tmp:
-        p = os.path.join(tmp, entry.name)
+        p = os.path.join(tmp, base)
         with open(p, "wb") as fh:
             fh.write(data)
         crystals = read(p)
