@@ -161,10 +161,16 @@ def count_entries(inputs: Iterable[str]) -> int:
     return n
 
 
-def _walk(root: str, load: bool) -> Iterator[Entry]:
+def _walk(root: str, load: bool, seen: set | None = None) -> Iterator[Entry]:
     """Files under root, depth first, each directory sorted by name; hidden
-    files and directories are skipped."""
+    files and directories are skipped.  A directory reached a second time
+    through a link (a link back up the tree would loop) is not walked again."""
+    seen = set() if seen is None else seen
     try:
+        st = os.stat(root)
+        if (st.st_dev, st.st_ino) in seen:
+            return
+        seen.add((st.st_dev, st.st_ino))
         with os.scandir(root) as it:
             items = sorted((e.name, e.is_dir()) for e in it if not e.name.startswith("."))
     except OSError as exc:
@@ -173,7 +179,7 @@ def _walk(root: str, load: bool) -> Iterator[Entry]:
     for name, is_dir in items:
         path = os.path.join(root, name)
         if is_dir:
-            yield from _walk(path, load)
+            yield from _walk(path, load, seen)
         elif _wanted(name):
             yield from _one_path(path, load)
 
