@@ -23,6 +23,18 @@ def _valence(items: list[str]) -> dict[str, int]:
     return out
 
 
+def _positive(kind):
+    def parse(text: str):
+        try:
+            value = kind(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"expected a positive number, got {text!r}") from None
+        if not value > 0:
+            raise argparse.ArgumentTypeError(f"expected a positive number, got {text!r}")
+        return value
+    return parse
+
+
 def build_parser() -> argparse.ArgumentParser:
     from . import __version__
 
@@ -39,6 +51,10 @@ def build_parser() -> argparse.ArgumentParser:
     c.add_argument("--anions", help="comma-separated anion elements, e.g. Ga,Ge (default: chosen by electronegativity)")
     c.add_argument("--valence", action="append", metavar="El=n", help="override valence electrons, e.g. Eu=2 (repeatable)")
     c.add_argument("--block", help="check only this data block of a multi-block CIF")
+    c.add_argument("--max-atoms", type=_positive(int), metavar="N",
+                   help="turn away a unit cell of more than N atoms (default 50000)")
+    c.add_argument("--max-file-mb", type=_positive(float), metavar="MB",
+                   help="turn away a file larger than this, uncompressed (default 64)")
 
     e = sub.add_parser("explain", help="explain what a finding means")
     e.add_argument("slug", nargs="?", help="finding slug; omit to list them all")
@@ -120,17 +136,21 @@ def _check(parser, args) -> int:
 
     for p in missing:
         results.append(Result(path=p, status="error", error="no such file or directory"))
-    if args.block:
-        from .api import check_crystal
-        from .read import read
+    from .limits import MB, applied
 
-        for p in sources:
-            try:
-                results.extend(check_crystal(c, opts) for c in read(p, block=args.block))
-            except StructureError as exc:
-                results.append(Result(path=p, status="error", error=str(exc)))
-    else:
-        results.extend(check_all(sources, options=opts))
+    max_bytes = int(args.max_file_mb * MB) if args.max_file_mb else None
+    with applied(max_atoms=args.max_atoms, max_bytes=max_bytes):
+        if args.block:
+            from .api import check_crystal
+            from .read import read
+
+            for p in sources:
+                try:
+                    results.extend(check_crystal(c, opts) for c in read(p, block=args.block))
+                except StructureError as exc:
+                    results.append(Result(path=p, status="error", error=str(exc)))
+        else:
+            results.extend(check_all(sources, options=opts))
     if args.format == "json":
         from .render.json import to_json
 
