@@ -37,7 +37,8 @@ BAD = {
     "truncated.cif": GOOD[: GOOD.index("_atom_site_fract_y")].encode(),
     "nocell.cif": b"data_x\nloop_\n_atom_site_label\n_atom_site_type_symbol\n_atom_site_fract_x\n_atom_site_fract_y\n_atom_site_fract_z\nSi1 Si 0 0 0\n",
     "flat.cif": GOOD.replace("_cell_angle_gamma 90", "_cell_angle_gamma 180").encode(),
-    "overlap.cif": GOOD.replace("C1 C 0.25 0.25 0.25", "C1 C 0.25 0.25 0.25\nC2 C 0.2501 0.25 0.25").encode(),
+    # Two different fully occupied atoms on one spot (a repeated line of the same atom is merged instead).
+    "overlap.cif": GOOD.replace("C1 C 0.25 0.25 0.25", "C1 C 0.25 0.25 0.25\nSi2 Si 0.2501 0.25 0.25").encode(),
     "unknown.cif": GOOD.replace("C1 C 0.25", "Q1 Qq 0.25").encode(),
 }
 
