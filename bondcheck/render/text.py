@@ -47,7 +47,10 @@ def render_one(r) -> str:
         lines.append(
             f"     VEC_A = {_f(r.electrons_per_formula)} valence electrons / {_f(r.anions_per_formula)} anions = {_f(r.vec_anion, 3)}"
         )
-        lines.append(f"     predicted anion-anion bonds AA = 8 - VEC_A = {_f(r.aa_predicted, 3)} (with CC = 0)")
+        note = "(with CC = 0)"
+        if r.aa_predicted is not None and r.aa_predicted < 0:
+            note = f"(negative: cations must keep at least {_f(-r.aa_predicted, 3)} electrons per anion)"
+        lines.append(f"     predicted anion-anion bonds AA = 8 - VEC_A = {_f(r.aa_predicted, 3)} {note}")
         lines.append(f"     observed  AA = {_f(r.aa_observed, 3)}   CC (electrons in cation-cation bonds) = {_f(r.cc_observed, 3)}")
         lines.append(f"     residual = VEC_A - 8 + AA - CC = {_f(r.residual, 3)} electrons per anion")
     if getattr(r, "polyanion", ""):
