@@ -29,11 +29,12 @@ import os
 import select
 import sys
 import time
+import zlib
 from collections import Counter, deque
 from typing import Callable, Iterable, Iterator
 
 from .sources import Entry, iter_entries, load_crystals
-from .store import Store, encode, specific
+from .store import Store, specific
 
 __all__ = ["scan", "Scanner", "Tally", "check_entry", "settings_key", "open_writer",
            "read_rows", "summarize", "render_summary", "EXIT_OK", "EXIT_FLAGGED", "EXIT_USAGE"]
@@ -132,9 +133,12 @@ def _answer(e: Entry, job: tuple) -> tuple:
     the main process needs them (job = (options, full_rows))."""
     options, full = job
     status, rows = check_entry(e, options)
-    blob = encode(rows)
-    texts = [json.dumps({k: v for k, v in d.items() if k != "path"}, separators=(",", ":"), allow_nan=False)
-             for d in rows]
+    texts = []
+    for d in rows:  # one encoding per row serves the store and the JSON Lines output
+        g = {"path": d.get("path") or ""}
+        g.update(d)
+        texts.append(json.dumps(g, separators=(",", ":"), allow_nan=False))
+    blob = zlib.compress(("[" + ",".join(texts) + "]").encode(), 1)
     return e.seq, status, rows if full else [_brief(d) for d in rows], blob, texts
 
 

@@ -342,6 +342,7 @@ def _tar(path: str, load: bool) -> Iterator[Entry]:
     with tf:
         try:
             for m in tf:
+                tf.members = []  # a TarFile keeps every member it has read: memory would grow with the archive
                 count += 1
                 total += max(0, m.size)  # a stream inflates what it skips, too
                 if count > lim.max_archive_entries:

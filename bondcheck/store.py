@@ -195,19 +195,20 @@ def generic(row: dict, entry: str) -> dict:
 
 def specific(rows: list[dict], entry: str, digest: str, texts: list[str] | None = None) -> list[Row]:
     """Stored rows made into the rows of one entry: ``entry`` and ``path``
-    first, ``hash`` last.  ``texts``: the JSON of each row without its path,
-    as a worker wrote it."""
+    first, ``hash`` last.  ``texts``: the JSON of each stored row as a worker
+    wrote it, ``path`` first, from which the row's own JSON is spliced."""
     out = []
     for i, g in enumerate(rows):
-        path = entry + (g.get("path") or "")
+        suffix = g.get("path") or ""
+        path = entry + suffix
         r = Row(entry=entry, path=path)
         r.update((k, v) for k, v in g.items() if k != "path")
         r["hash"] = digest
+        r.json = None
         if texts is not None:
-            body = texts[i]
-            r.json = (f'{{"entry":{json.dumps(entry)},"path":{json.dumps(path)},'
-                      f'{body[1:-1]},"hash":"{digest}"}}')
-        else:
-            r.json = None
+            text = texts[i]
+            head = '{"path":' + json.dumps(suffix)
+            if text.startswith(head):
+                r.json = f'{{"entry":{json.dumps(entry)},"path":{json.dumps(path)}{text[len(head):-1]},"hash":"{digest}"}}'
         out.append(r)
     return out

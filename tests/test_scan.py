@@ -260,6 +260,21 @@ def test_identical_content_is_checked_once(tmp_path):
     assert all(r["formula"] == "MoS2" for r in rows)
 
 
+def test_a_row_per_data_block(tmp_path):
+    """A CIF holding two data blocks (COD 1010995 and 9007661 one after the
+    other) is one entry with a row per block."""
+    two = tmp_path / "two-blocks.cif"
+    two.write_bytes((MINERALS / SIC).read_bytes() + b"\n" + (MINERALS / MOS2).read_bytes())
+    out = tmp_path / "r.jsonl"
+    tally = scan([str(tmp_path)], out=[str(out)], store=str(tmp_path / "s.sqlite"), executor="inline", progress=False)
+    rows = list(read_rows(str(out)))
+    assert [(r["entry"], r["path"], r["formula"]) for r in rows] == [
+        (str(two), f"{two}#1010995", "SiC"), (str(two), f"{two}#9007661", "MoS2")]
+    assert tally.entries == 1 and tally.rows == 2
+    again = list(Scanner([str(tmp_path)], store=str(tmp_path / "s.sqlite"), executor="inline").rows())
+    assert [r["path"] for r in again] == [r["path"] for r in rows]
+
+
 def test_globs_lists_and_missing_paths(tmp_path):
     for name in (SIC, MOS2, QUARTZ):
         shutil.copy(MINERALS / name, tmp_path / name)
