@@ -434,6 +434,8 @@ def _oxidation_states(case: Case) -> list[F.Finding]:
     el = els[0]
     v = elements.valence(el)
     ox = v - kept_each
+    if not np.isfinite(ox):  # a vanishing occupancy of the d-block sites
+        return []
     common, known = elements.oxidation_states(el)
     if ox < -1e-6:
         why = "a negative state"
