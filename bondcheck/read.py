@@ -36,6 +36,9 @@ __all__ = ["read", "iter_structure_files", "read_cif_bytes", "species", "cell_ma
 # apart.  Closer images are kept and left to the bond stage to report.
 MERGE_TOL = 0.1
 OCC_TOL = 1e-3
+# Occupancies are refined to two or three decimals; a smaller one is a slip
+# (or a value made to divide by).
+MIN_OCCUPANCY = 1e-4
 
 # What no crystal does; beyond these the input is wrong (or hostile) and the
 # later stages would spend minutes on it.  Common practice, no source:
@@ -242,7 +245,7 @@ def _decode(data: bytes) -> str:
 _GEMMI_POS = re.compile(r"^string:(\d+)(?::\d+)?(?:\(\d+\))?:?\s*")
 
 
-def _cif_syntax_error(exc: Exception) -> StructureError:
+def _cif_syntax_error(exc: Exception, text: str = "") -> StructureError:
     msg = _one_line(exc)
     m = _GEMMI_POS.match(msg)
     where = ""
@@ -252,9 +255,17 @@ def _cif_syntax_error(exc: Exception) -> StructureError:
         msg = msg[m.end():]
     elif msg.startswith("string:"):
         msg = msg[len("string:"):].lstrip()
-    dup = re.match(r"in data_(\S*): (duplicate tag \S+)", msg)
-    if dup:  # 'in data_x: duplicate tag _y'
-        msg = f"{dup.group(2)} in data block '{dup.group(1)}'"
+    inside = re.match(r"in data_(\S*): (.+)", msg)
+    if inside:  # 'in data_x: duplicate tag _y', 'in data_x: _y has no value'
+        msg = f"{inside.group(2)} in data block '{inside.group(1)}'"
+    elif msg == "parse error" and m and text:
+        # gemmi says no more; show the line it stopped at
+        lines = text.split("\n", int(m.group(1)))
+        line = lines[int(m.group(1)) - 1] if len(lines) >= int(m.group(1)) else ""
+        snippet = line.strip()
+        if snippet:
+            shown = repr(snippet[:40] + ("..." if len(snippet) > 40 else ""))
+            msg = f"cannot make sense of {shown}"
     if "wrong number of values in loop" in low:
         kind = "truncated CIF or broken loop"
         where = where.replace("(line", "(loop at line")
@@ -314,9 +325,11 @@ def _parse_cif(text: str) -> tuple[object, dict]:
     in files from the wild; the notes say what was mended."""
     notes: dict = {}
     repairs = 0
+    level = 1  # gemmi's checks: 1 rejects repeated tags, 0 lets them through
+    duplicate_error = None
     while True:
         try:
-            return gemmi.cif.read_string(text), notes
+            doc = gemmi.cif.read_string(text, level)
         except Exception as exc:  # gemmi raises ValueError/RuntimeError on syntax errors
             fixed = None
             if repairs < _MAX_REPAIRS:
@@ -331,10 +344,46 @@ def _parse_cif(text: str) -> tuple[object, dict]:
                     fixed, renamed = _rename_duplicate_blocks(text, exc)
                     if fixed is not None:
                         notes["renamed_blocks"] = renamed
+                if fixed is None and level and "duplicate tag" in str(exc):
+                    level, duplicate_error, fixed = 0, exc, text
             if fixed is None:
-                raise _cif_syntax_error(exc) from None
+                raise _cif_syntax_error(exc, text) from None
             text = fixed
             repairs += 1
+            continue
+        if duplicate_error is not None:
+            repeated = _repeated_tags(doc)
+            if any(t.startswith(_READ_PREFIXES) and not t.startswith(_ANISO) for t in repeated):
+                raise _cif_syntax_error(duplicate_error, text) from None
+            notes["repeated_tags"] = repeated[:10]
+        return doc, notes
+
+
+# Tags the reader uses: repeated with other values, they would make the
+# structure ambiguous.  Any other tag may repeat (a publication field, a
+# database code written twice): the first value stands, as gemmi finds it.
+_READ_PREFIXES = ("_cell_length", "_cell.length", "_cell_angle", "_cell.angle", "_atom_site", "_symmetry",
+                  "_space_group", "_atom_type")
+_ANISO = ("_atom_site_aniso", "_atom_site.aniso", "_atom_site_anisotrop")
+
+
+def _repeated_tags(doc) -> list[str]:
+    out: list[str] = []
+    for i in range(len(doc)):
+        seen: set[str] = set()
+        for item in doc[i]:
+            if item.pair is not None:
+                tags = [item.pair[0]]
+            elif item.loop is not None:
+                tags = list(item.loop.tags)
+            else:
+                continue
+            for t in tags:
+                t = t.lower()
+                if t in seen and t not in out:
+                    out.append(t)
+                seen.add(t)
+    return out
 
 
 def _cif_crystals(data, source: str, block: str | None, lim: limits.Limits,
@@ -900,6 +949,11 @@ def _symmetry(block, alpha: float, gamma: float):
         if sg is not None and sg.xhm() not in settings:
             settings.append(sg.xhm())
     if not settings:
+        if how == "hm":  # a Hall symbol under the name's tag
+            try:
+                return [(_group_from_hall(name), "")], hm, "hall"
+            except StructureError:
+                pass
         raise StructureError(f"unknown space group {name!r} and no symmetry operators")
     return [(_group_from_spacegroup(x), x) for x in settings], hm, how
 
@@ -1189,12 +1243,12 @@ def _occupancies(occ_raw: list[str] | None, nrow: int, labels: list[str]) -> np.
         v = _num(first)
         if math.isnan(v):
             v = 1.0
-        if not 0.0 < v <= 1.0 + OCC_TOL:
+        if not MIN_OCCUPANCY <= v <= 1.0 + OCC_TOL:
             _check_occupancy(np.array([v]), labels[:1])
         return _filled(nrow, min(v, 1.0))
     occ = _floats(occ_raw)
     occ[np.isnan(occ)] = 1.0  # '?' or '.': not given
-    if not (occ.min() > 0.0 and occ.max() <= 1.0 + OCC_TOL):
+    if not (occ.min() >= MIN_OCCUPANCY and occ.max() <= 1.0 + OCC_TOL):
         _check_occupancy(occ, labels)
     return np.minimum(occ, 1.0, out=occ)
 
@@ -1398,10 +1452,15 @@ def _right_handed(cell: np.ndarray, frac: np.ndarray) -> tuple[np.ndarray, np.nd
 
 
 def _check_occupancy(occ: np.ndarray, labels) -> None:
-    bad = np.nonzero((occ <= 0.0) | (occ > 1.0 + OCC_TOL) | ~np.isfinite(occ))[0]
+    bad = np.nonzero(~((occ >= MIN_OCCUPANCY) & (occ <= 1.0 + OCC_TOL)))[0]
     if len(bad):
         i = int(bad[0])
-        what = "is not positive" if not occ[i] > 0 else "exceeds 1"
+        if not occ[i] > 0:
+            what = "is not positive"
+        elif occ[i] < MIN_OCCUPANCY:
+            what = f"is too small to be meant (under {MIN_OCCUPANCY:g})"
+        else:
+            what = "exceeds 1"
         site = f" of site '{labels[i]}'" if labels is not None and labels[i] else f" of atom {i + 1}"
         raise StructureError(f"occupancy {occ[i]:g}{site} {what}")
 
