@@ -235,6 +235,9 @@ def _decode(data: bytes) -> str:
         text = data.decode("latin-1")
     if text.startswith("\ufeff"):
         text = text[1:]
+    if "\r" in text and "\n" not in text:
+        # classic Mac OS line ends: gemmi ends comments at '\n' only
+        text = text.replace("\r", "\n")
     return text
 
 
