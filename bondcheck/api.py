@@ -22,7 +22,7 @@ from .bonds import Criterion, find_contacts, per_atom
 from .count import Count, _element_facts, count, target
 from .diagnose import diagnose
 from .record import Crystal, StructureError
-from .symmetry import find_sites
+from .symmetry import find_sites, group_sites
 
 
 @dataclass(slots=True)
@@ -30,12 +30,17 @@ class Options:
     anions: list[str] | None = None
     valence: dict[str, int] = field(default_factory=dict)
     criterion: Criterion = field(default_factory=Criterion)
+    # False: group atoms into sites by their environments instead of a
+    # symmetry search (several times faster; no space group, Wyckoff letters
+    # or multiplicities in the result).
+    symmetry: bool = True
 
     def key(self) -> str:
         c = self.criterion
         an = ",".join(self.anions or [])
         va = ",".join(f"{k}={v}" for k, v in sorted(self.valence.items()))
-        return f"anions={an};valence={va};crit={c.core:.4f},{c.maximum:.4f},{c.relative:.4f}"
+        key = f"anions={an};valence={va};crit={c.core:.4f},{c.maximum:.4f},{c.relative:.4f}"
+        return key if self.symmetry else key + ";symmetry=off"
 
 
 @dataclass(slots=True)
@@ -108,7 +113,7 @@ def check_crystal(crystal: Crystal, options: Options | None = None) -> Result:
     try:
         _validate(crystal)
         contacts = find_contacts(crystal, options.criterion)
-        sites = find_sites(crystal)
+        sites = find_sites(crystal) if options.symmetry else group_sites(crystal, contacts)
         c = count(crystal, contacts, sites, options.anions, options.valence)
         coord, nearest, last, first_out, fragile = per_atom(contacts, crystal.natoms, crystal.occupancy)
         fragile_labels = _fragile_sites(crystal, contacts, sites, c, options, fragile)
@@ -120,7 +125,7 @@ def check_crystal(crystal: Crystal, options: Options | None = None) -> Result:
         res.seconds = time.perf_counter() - t0
         return res
     res.formula, z_cell = formula_of(crystal)
-    res.spacegroup = f"{sites.spacegroup} ({sites.spacegroup_number})"
+    res.spacegroup = f"{sites.spacegroup} ({sites.spacegroup_number})" if sites.spacegroup else ""
     res.verdict = verdict
     res.findings = found
     res.components = [comp.to_dict() for comp in components]

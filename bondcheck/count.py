@@ -23,7 +23,10 @@ number of anions.
 from __future__ import annotations
 
 import math
+import threading
+from collections import OrderedDict
 from dataclasses import dataclass, field
+from functools import lru_cache
 
 import numpy as np
 
@@ -51,6 +54,9 @@ SPLIT_STEP = 0.6
 # Most electronegative metal accepted as an anion when no p-block element is
 # present (aurides, platinides).
 METAL_ANION_EN = 2.2
+# Per-thread memory of the last structure's static quantities and of recent
+# searches for closing totals.
+_LOCAL = threading.local()
 
 
 def _capable_by_z() -> np.ndarray:
@@ -109,15 +115,20 @@ class Count:
         return "closes" if self.closure.closes else "open"
 
 
-def _symbols(crystal: Crystal) -> list[str]:
-    syms = elements.symbols()
-    return [syms[z] for z in np.unique(crystal.numbers)]
-
-
 def candidate_partitions(crystal: Crystal) -> list[tuple[list[str], str]]:
     """Anion sets to try, in order: the most electronegative anion-capable
     element, then the next ones added in order of electronegativity."""
-    present = _symbols(crystal)
+    zs = tuple(np.unique(crystal.numbers).tolist())
+    return [(list(an), why) for an, why in _candidates(zs)]
+
+
+@lru_cache(maxsize=4096)
+def _candidates(zs: tuple[int, ...]) -> tuple[tuple[tuple[str, ...], str], ...]:
+    syms = elements.symbols()
+    return tuple((tuple(an), why) for an, why in _candidate_list([syms[z] for z in zs]))
+
+
+def _candidate_list(present: list[str]) -> list[tuple[list[str], str]]:
     en = elements.pauling()
     nums = elements.numbers()
     order = sorted(present, key=lambda s: -en[nums[s]])
@@ -194,6 +205,46 @@ def count(
     return c
 
 
+def _static(crystal: Crystal, sites: Sites, valence: dict[str, int]) -> tuple:
+    """The quantities of `_Context` that depend on the atoms and sites alone,
+    remembered for the last structure (per thread): the checks of one
+    structure count it several times with other contacts."""
+    z, occ, site = crystal.numbers, crystal.occupancy, sites.site
+    vkey = tuple(sorted(valence.items()))
+    last = getattr(_LOCAL, "static", None)
+    if (
+        last is not None
+        and last[3] == vkey
+        and np.array_equal(last[0], z)
+        and np.array_equal(last[1], occ)
+        and np.array_equal(last[2], site)
+    ):
+        return last[4]
+    syms = elements.symbols()
+    sym_of_atom = [syms[k] for k in z]
+    present = sorted(set(sym_of_atom))
+    val = elements.valence_by_z().copy()
+    for el, n in valence.items():
+        val[elements.numbers()[el]] = n
+    val_atom = val[z]
+    electrons = float(np.sum(occ * val_atom))
+    ep_atom = elements.electropositive_by_z()[z]
+    capable_atom = _capable_by_z()[z]
+    # Groups: one per (site, element).
+    key = site.astype(np.int64) * 128 + z
+    uniq, group_of = np.unique(key, return_inverse=True)
+    group_of = group_of.reshape(-1)
+    groups = [(int(k // 128), int(k % 128)) for k in uniq]
+    group_weight = np.bincount(group_of, weights=occ, minlength=len(uniq))
+    group_size = np.bincount(group_of, minlength=len(uniq))
+    targets = np.where((z == 1) | (z == 2), 2.0, 8.0)
+    for arr in (val_atom, ep_atom, capable_atom, group_of, group_weight, group_size, targets):
+        arr.setflags(write=False)
+    out = (sym_of_atom, present, val_atom, electrons, ep_atom, capable_atom, group_of, groups, group_weight, group_size, targets)
+    _LOCAL.static = (z.copy(), occ.copy(), site.copy(), vkey, out)
+    return out
+
+
 class _Context:
     """Per-structure quantities shared by the candidate partitions."""
 
@@ -201,33 +252,18 @@ class _Context:
         self.crystal = crystal
         self.contacts = contacts
         self.sites = sites
-        syms = elements.symbols()
-        z = crystal.numbers
-        self.sym_of_atom = [syms[k] for k in z]
-        self.present = sorted(set(self.sym_of_atom))
         self.valence_override = valence
-        val = elements.valence_by_z().copy()
-        for el, n in valence.items():
-            val[elements.numbers()[el]] = n
-        self.val_atom = val[z]
         self.occ = crystal.occupancy
-        self.electrons = float(np.sum(self.occ * self.val_atom))
+        (
+            self.sym_of_atom, self.present, self.val_atom, self.electrons, self.ep_atom, self.capable_atom,
+            self.group_of, self.groups, self.group_weight, self.group_size, self.targets,
+        ) = _static(crystal, sites, valence)
         c = contacts
         self.bonded = c.bonded
         bi, bj = c.i[c.bonded], c.j[c.bonded]
         self.bi, self.bj = bi, bj
         self.bw = c.weight[c.bonded]
         self.bd = c.d[c.bonded]
-        self.ep_atom = elements.electropositive_by_z()[z]
-        self.capable_atom = _capable_by_z()[z]
-        # Groups: one per (site, element).
-        key = sites.site.astype(np.int64) * 128 + z
-        uniq, self.group_of = np.unique(key, return_inverse=True)
-        self.group_of = self.group_of.reshape(-1)
-        self.groups = [(int(k // 128), int(k % 128)) for k in uniq]
-        self.group_weight = np.bincount(self.group_of, weights=self.occ, minlength=len(uniq))
-        self.group_size = np.bincount(self.group_of, minlength=len(uniq))
-        self.targets = np.where((z == 1) | (z == 2), 2.0, 8.0)
 
     def polyanion_split(self, start: list[str]) -> tuple[list[str], str]:
         """Grow the anion set by elements bonded to anions with a small
@@ -500,7 +536,27 @@ def _local_totals(w: float, opts: dict) -> dict:
 MAX_STATES = 20000
 
 
+REACHED_SIZE = 64
+
+
 def _reachable(options, lo: float = -math.inf, hi: float = math.inf):
+    """`_search`, remembered (per thread): the checks of one structure (the
+    criterion range, element swaps) ask the same question several times."""
+    cache = getattr(_LOCAL, "reached", None)
+    if cache is None:
+        cache = _LOCAL.reached = OrderedDict()
+    key = (tuple((g, w, tuple(opts.items())) for g, w, opts, _v in options), lo, hi)
+    hit = cache.get(key)
+    if hit is not None:
+        cache.move_to_end(key)
+        return hit
+    out = cache[key] = _search(options, lo, hi)
+    if len(cache) > REACHED_SIZE:
+        cache.popitem(last=False)
+    return out
+
+
+def _search(options, lo: float = -math.inf, hi: float = math.inf):
     """Totals of kept electrons reachable by choosing one option per group
     (uniform over the group) or mixing two options within a group.
 
