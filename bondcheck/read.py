@@ -177,9 +177,9 @@ def _read_path(path: str, block: str | None, lim: limits.Limits) -> list[Crystal
         data = _read_bytes(path, lim.max_bytes)
         if _looks_like_cif(data):
             return _cif_crystals(data, path, block, lim, keep_going=False)
-        crystals = _read_with_ase(Path(path), lim.max_bytes, data)
+        crystals = _read_with_ase(Path(path), lim, data)
     else:
-        crystals = _read_with_ase(Path(path), lim.max_bytes)
+        crystals = _read_with_ase(Path(path), lim)
     for c in crystals:
         limits.check_atoms(c.natoms, lim.max_atoms)
         _check_plausible(c)
@@ -1342,7 +1342,7 @@ def _read_object(obj) -> list[Crystal]:
     raise StructureError(f"cannot read an object of type {type(obj).__name__}")
 
 
-def _read_with_ase(path: Path, max_bytes: int, data: bytes | None = None) -> list[Crystal]:
+def _read_with_ase(path: Path, lim: limits.Limits, data: bytes | None = None) -> list[Crystal]:
     import ase.io
 
     lname = path.name.lower()
@@ -1352,10 +1352,15 @@ def _read_with_ase(path: Path, max_bytes: int, data: bytes | None = None) -> lis
     elif lname.endswith(_XYZ_SUFFIXES):
         fmt = "extxyz"
     if data is None:
-        data = _read_bytes(path, max_bytes)
+        data = _read_bytes(path, lim.max_bytes)
     if not data.strip():
         raise StructureError("empty file")
     _decode(data)  # rejects binary junk with a clear message
+    base = lname[:-3] if lname.endswith(".gz") else lname
+    if fmt == "vasp" or base.endswith(_VASP_SUFFIXES) or path.name.startswith(_VASP_PREFIXES):
+        _check_poscar_counts(data, lim.max_atoms)
+    elif base.endswith(_XYZ_SUFFIXES):
+        _check_xyz_counts(data, lim.max_atoms)
     try:
         images = ase.io.read(str(path), index=":", format=fmt)
     except StructureError:
@@ -1378,6 +1383,56 @@ def _read_with_ase(path: Path, max_bytes: int, data: bytes | None = None) -> lis
         else:
             out.append(_from_ase(atoms, f"{path}#{i}", f"{stem}#{i}", fmt or "ase"))
     return out
+
+
+def _ints(line: bytes) -> list[int] | None:
+    try:
+        return [int(t) for t in line.split()]
+    except ValueError:
+        return None
+
+
+def _check_poscar_counts(data: bytes, max_atoms: int) -> None:
+    """Turn away a POSCAR whose atom counts exceed the limit or the lines the
+    file holds, before ase allocates for them (a count of 10^8 costs ase
+    gigabytes and a minute)."""
+    lines = data.split(b"\n", 9)
+    counts = None
+    for k in (5, 6):
+        if len(lines) > k:
+            counts = _ints(lines[k])
+            if counts:
+                break
+    if not counts:
+        return  # let ase say what is wrong
+    n = sum(counts)
+    limits.check_atoms(n, max_atoms)
+    nlines = data.count(b"\n") + 1
+    if n > nlines:
+        raise StructureError(f"truncated POSCAR: the counts line declares {n:,} atoms, "
+                             f"the file has {nlines:,} lines")
+
+
+def _check_xyz_counts(data: bytes, max_atoms: int) -> None:
+    """The same for each frame of an XYZ file: its first line counts its atoms."""
+    lines = data.split(b"\n")
+    i, n = 0, len(lines)
+    while n and not lines[n - 1].strip():
+        n -= 1
+    while i < n:
+        if not lines[i].strip():
+            i += 1
+            continue
+        head = lines[i].split()
+        try:
+            count = int(head[0])
+        except ValueError:
+            return  # not a frame header: let ase say what is wrong
+        limits.check_atoms(count, max_atoms)
+        if i + 2 + count > n:
+            raise StructureError(f"truncated XYZ file: a frame declares {count:,} atoms "
+                                 f"and {max(0, n - i - 2):,} lines follow")
+        i += 2 + count
 
 
 def _from_ase(atoms, source: str, name: str, fmt: str = "ase") -> Crystal:
