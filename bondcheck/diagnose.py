@@ -15,6 +15,7 @@ from . import findings as F
 from .bonds import Contacts, Criterion, find_contacts, rescaled
 from .count import PAULING_K, Count, count, target
 from .motifs import Component, anion_components, find_clusters, wade
+from .motifs import formula as formula_of_numbers
 from .record import Crystal
 from .symmetry import Sites
 
@@ -22,7 +23,9 @@ CONSISTENT = "consistent"
 MISMATCH = "mismatch"
 NOT_APPLICABLE = "not-applicable"
 
-# Swaps tried per site before giving up (keeps the probe cheap on big cells).
+# Element swaps tried per structure (each is a new count), and the largest
+# number of (site, element) groups for which the probe runs at all.
+MAX_SWAPS = 6
 MAX_SWAP_GROUPS = 24
 # Lone pair counted as stereochemically active above this offset (angstrom):
 # common practice, no source.
@@ -296,7 +299,7 @@ def _clusters(case: Case) -> list[F.Finding]:
     closes = all(cl.kind != "none" for cl in found)
     by_formula: dict[str, list] = {}
     for cl in found:
-        by_formula.setdefault(_formula(cr, cl.atoms), []).append(cl)
+        by_formula.setdefault(formula_of_numbers(cr.numbers[cl.atoms]), []).append(cl)
     out = []
     for formula, group in by_formula.items():
         cl = group[0]
@@ -315,12 +318,6 @@ def _clusters(case: Case) -> list[F.Finding]:
         out.append(f)
     out.sort(key=lambda f: -f.rank)
     return out
-
-
-def _formula(cr: Crystal, atoms) -> str:
-    syms = elements.symbols()
-    zs, n = np.unique(cr.numbers[atoms], return_counts=True)
-    return "".join(f"{syms[z]}{k if k > 1 else ''}" for z, k in zip(zs, n))
 
 
 def _metallic(case: Case) -> list[F.Finding]:
@@ -488,13 +485,21 @@ def _swaps(case: Case) -> list[F.Finding]:
         return []
     syms = elements.symbols()
     hits, mixes = [], []
-    # Electrons in excess call for a lighter neighbour, missing ones for a heavier.
+    # Electrons in excess call for a lighter neighbour, missing ones for a
+    # heavier; try first the sites whose weight best matches the imbalance,
+    # and at most MAX_SWAPS of them (each try is a new count).
     direction = -1 if c.residual > 0 else 1
-    for g, (s, z) in enumerate(c.groups):
+    imbalance = abs(c.residual * c.n_anion)
+    weight = np.bincount(c.group_of, weights=cr.occupancy, minlength=len(c.groups))
+    order = sorted(range(len(c.groups)), key=lambda g: abs(weight[g] - imbalance))
+    tried = 0
+    for g in order:
+        s, z = c.groups[g]
         atoms = c.group_of == g
         for t in _swap_targets(z):
-            if (t - z) != direction:
+            if (t - z) != direction or tried >= MAX_SWAPS:
                 continue
+            tried += 1
             nums = cr.numbers.copy()
             nums[atoms] = t
             alt = replace(cr, numbers=nums)

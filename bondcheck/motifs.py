@@ -80,7 +80,8 @@ def periodic_components(n: int, bi, bj, shift) -> tuple[np.ndarray, dict[int, in
     return comp, dims
 
 
-def _formula(numbers) -> str:
+def formula(numbers) -> str:
+    """Element counts in atomic-number order: 'S2', 'Ga3Ge7'."""
     syms = elements.symbols()
     zs, counts = np.unique(numbers, return_counts=True)
     return "".join(f"{syms[z]}{c if c > 1 else ''}" for z, c in zip(zs, counts))
@@ -98,24 +99,29 @@ def anion_components(crystal, contacts, count) -> list[Component]:
     b = contacts.bonded
     bi, bj, sh = contacts.i[b][count.aa_bond], contacts.j[b][count.aa_bond], contacts.shift[b][count.aa_bond]
     comp_of, dims = periodic_components(anions.size, index[bi], index[bj], sh)
-    deg = np.zeros(anions.size)
-    np.add.at(deg, index[bi], 1)
-    np.add.at(deg, index[bj], 1)
+    ncomp = len(dims)
+    deg = np.bincount(index[bi], minlength=anions.size) + np.bincount(index[bj], minlength=anions.size)
+    edges = np.bincount(comp_of[index[bi]], minlength=ncomp) if bi.size else np.zeros(ncomp, dtype=np.int64)
+    # Formula of every component at once: counts per (component, element).
+    syms = elements.symbols()
+    z = crystal.numbers[anions]
+    key, counts = np.unique(comp_of * 128 + z, return_counts=True)
+    formulas = [""] * ncomp
+    for k, n in zip(key.tolist(), counts.tolist()):
+        formulas[k // 128] += f"{syms[k % 128]}{n if n > 1 else ''}"
+    order = np.argsort(comp_of, kind="stable")
+    bounds = np.searchsorted(comp_of[order], np.arange(ncomp + 1))
     out = []
-    for cid in np.unique(comp_of):
-        members = np.flatnonzero(comp_of == cid)
-        atoms = anions[members].tolist()
-        dim = int(dims[cid])
-        inside = np.isin(index[bi], members) & np.isin(index[bj], members)
-        edges = int(np.sum(inside))
+    for cid in range(ncomp):
+        members = order[bounds[cid]:bounds[cid + 1]]
         d = deg[members]
-        comp = Component(atoms, dim, "", _formula(crystal.numbers[atoms]), edges, float(np.mean(d)))
-        comp.motif = _name(comp, d, crystal, contacts, count, members, index)
+        comp = Component(anions[members].tolist(), int(dims[cid]), "", formulas[cid], int(edges[cid]), float(d.mean()))
+        comp.motif = _name(comp, d)
         out.append(comp)
     return out
 
 
-def _name(comp: Component, deg: np.ndarray, crystal, contacts, count, members, index) -> str:
+def _name(comp: Component, deg: np.ndarray) -> str:
     n = len(comp.atoms)
     if comp.dimensionality == 0:
         if n == 1:
