@@ -226,12 +226,14 @@ def fingerprint(crystal) -> str:
 
 
 def bytes_fingerprint(path) -> str:
+    h = hashlib.sha256()
     try:
-        with open(path, "rb") as fh:
-            data = fh.read()
+        with open(path, "rb") as fh:  # in chunks: a huge file costs no memory
+            for chunk in iter(lambda: fh.read(1 << 20), b""):
+                h.update(chunk)
     except OSError:
-        data = b""
-    return "file-sha256:" + hashlib.sha256(data).hexdigest()
+        h = hashlib.sha256()
+    return "file-sha256:" + h.hexdigest()
 
 
 def entry_key(fp: str, slug: str, sites) -> tuple:
