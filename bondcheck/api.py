@@ -84,8 +84,13 @@ def formula_of(crystal: Crystal) -> tuple[str, float]:
     """Reduced formula (electropositive elements first) and formula units per cell."""
     syms = elements.symbols()
     en = elements.pauling()
-    zs = np.unique(crystal.numbers)
-    amounts = {int(z): float(np.sum(crystal.occupancy[crystal.numbers == z])) for z in zs}
+    occ, numbers = crystal.occupancy, crystal.numbers
+    if occ.min() == 1.0 and occ.max() == 1.0 and numbers.min() >= 0:
+        # Full occupancy: the amounts are the atom counts.
+        per_z = np.bincount(numbers)
+        amounts = {z: float(per_z[z]) for z in np.flatnonzero(per_z).tolist()}
+    else:
+        amounts = {int(z): float(np.sum(occ[numbers == z])) for z in np.unique(numbers)}
     ints = [round(a) for a in amounts.values()]
     if all(abs(a - round(a)) < 1e-3 for a in amounts.values()) and min(ints) > 0:
         g = reduce(math.gcd, ints)
@@ -157,7 +162,7 @@ def _validate(crystal: Crystal) -> None:
     v = crystal.volume
     if not math.isfinite(v) or v < 1e-3:
         raise StructureError(f"cell volume is {v:.3g} A^3: the cell is degenerate")
-    if np.any(crystal.numbers < 1) or np.any(crystal.numbers > 103):
+    if crystal.numbers.min() < 1 or crystal.numbers.max() > 103:
         raise StructureError("unknown element in the structure")
 
 

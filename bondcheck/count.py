@@ -264,34 +264,40 @@ class _Context:
         self.bi, self.bj = bi, bj
         self.bw = c.weight[c.bonded]
         self.bd = c.d[c.bonded]
+        self.short = c.ratio[c.bonded] <= SATURATED_RATIO
+        self.no_ep = ~self.ep_atom[bi] & ~self.ep_atom[bj]
+        z = crystal.numbers
+        self.hetero = z[bi] != z[bj]
 
     def polyanion_split(self, start: list[str]) -> tuple[list[str], str]:
         """Grow the anion set by elements bonded to anions with a small
         electronegativity difference (< 0.5): a Ga-Ge framework, As-S pairs."""
-        en = elements.pauling()
+        en = elements.pauling().tolist()
         nums = elements.numbers()
+        syms = elements.symbols()
+        capable = _capable_by_z().tolist()
         anions = list(start)
         z = self.crystal.numbers
+        pairs = list(zip(z[self.bi].tolist(), z[self.bj].tolist()))
         changed = True
         while changed:
             changed = False
             an_z = {nums[a] for a in anions}
-            for a, b in zip(z[self.bi], z[self.bj]):
+            for a, b in pairs:
                 for x, y in ((a, b), (b, a)):
                     if x in an_z and y not in an_z:
-                        sy = elements.symbols()[y]
-                        if elements.can_be_anion(sy) and abs(en[x] - en[y]) < 0.5:
-                            anions.append(sy)
+                        if capable[y] and abs(en[x] - en[y]) < 0.5:
+                            anions.append(syms[y])
                             an_z.add(y)
                             changed = True
         # Anion-capable elements with no bond to any anion are isolated anions
         # (Cl- beside water molecules), not cations.
         bonded_to_anion = set()
-        for a, b in zip(z[self.bi], z[self.bj]):
+        for a, b in pairs:
             if a in an_z:
-                bonded_to_anion.add(int(b))
+                bonded_to_anion.add(b)
             if b in an_z:
-                bonded_to_anion.add(int(a))
+                bonded_to_anion.add(a)
         for sy in self.present:
             zz = nums[sy]
             if sy not in anions and elements.can_be_anion(sy) and zz not in bonded_to_anion:
@@ -314,12 +320,14 @@ class _Context:
         occ = self.occ
         n = cr.natoms
         bi, bj, bw = self.bi, self.bj, self.bw
-        aa = role[bi] & role[bj]
-        cc_candidate = ~role[bi] & ~role[bj] & ~self.ep_atom[bi] & ~self.ep_atom[bj]
+        rbi, rbj = role[bi], role[bj]
+        aa = rbi & rbj
+        cc_candidate = ~rbi & ~rbj & self.no_ep
         # Mean cation-anion bond length per atom, for the bridging test.
-        ca = role[bi] != role[bj]
-        dsum = np.bincount(bi[ca], weights=self.bd[ca], minlength=n) + np.bincount(bj[ca], weights=self.bd[ca], minlength=n)
-        dcnt = np.bincount(bi[ca], minlength=n) + np.bincount(bj[ca], minlength=n)
+        ca = rbi != rbj
+        ica, jca, dca = bi[ca], bj[ca], self.bd[ca]
+        dsum = np.bincount(ica, weights=dca, minlength=n) + np.bincount(jca, weights=dca, minlength=n)
+        dcnt = np.bincount(ica, minlength=n) + np.bincount(jca, minlength=n)
         with np.errstate(invalid="ignore", divide="ignore"):
             mean_ca = np.where(dcnt > 0, dsum / np.maximum(dcnt, 1), np.inf)
         limit = CC_BRIDGE * np.minimum(mean_ca[bi], mean_ca[bj])
@@ -345,7 +353,7 @@ class _Context:
         # Validity: a p-block cation bonded to another cation of a different
         # element should rather be an anion.
         valid, note = True, ""
-        hetero = cc & (z[bi] != z[bj])
+        hetero = cc & self.hetero
         if hetero.any():
             en = elements.pauling()
             for a, b in zip(z[bi[hetero]], z[bj[hetero]]):
@@ -422,8 +430,7 @@ class _Context:
         """Cations with four or more short, near-equal bonds to anions (a
         tetrahedral framework atom): no room for a lone pair."""
         n = self.crystal.natoms
-        ratio = self.contacts.ratio[self.bonded]
-        short = ca & (ratio <= SATURATED_RATIO)
+        short = ca & self.short
         ends = np.concatenate([self.bi[short], self.bj[short]])
         dd = np.concatenate([self.bd[short], self.bd[short]])
         cnt = np.bincount(ends, minlength=n)
