@@ -6,11 +6,12 @@ CONTCAR, extended XYZ, ...) or pymatgen (Structure JSON), imported lazily so
 that ``import bondcheck.read`` stays cheap.
 
 Whatever goes wrong, the public functions raise :class:`StructureError` with a
-one-line message meant for users.
+one-line message meant for users.  Inputs over the limits of
+:mod:`bondcheck.limits` (file size, atoms per cell) are turned away before the
+expensive work, and so are cells no crystal has (docs/limits.md).
 """
 from __future__ import annotations
 
-import gzip
 import json
 import math
 import os
@@ -26,7 +27,7 @@ import numpy as np
 from . import limits
 from .record import Crystal, StructureError
 
-__all__ = ["read", "iter_structure_files", "read_cif_bytes", "species", "cell_matrix",
+__all__ = ["read", "read_blocks", "iter_structure_files", "read_cif_bytes", "species", "cell_matrix",
            "Crystal", "StructureError"]
 
 # Images of one site closer than this (angstrom) are one atom (a site on a
