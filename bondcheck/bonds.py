@@ -21,6 +21,7 @@ closer than OVERLAP angstrom make the structure unreadable.
 """
 from __future__ import annotations
 
+import math
 import threading
 from dataclasses import dataclass
 
@@ -83,9 +84,32 @@ class Contacts:
 _LOCAL = threading.local()
 
 
+def _check_cell_list(cell: np.ndarray, cutoff: float) -> None:
+    """Refuse the cells vesin's cell list cannot take.
+
+    vesin (0.6) caps its cell list at 1e5 bins, scaling the bins per axis down
+    by their ratios; for a large, flat cell (say 2500 x 2500 x 5.6 A) the thin
+    axis gets 0 bins and vesin divides by zero, which kills the process.  The
+    bin counts are computed here as vesin computes them.
+    """
+    vol = abs(float(np.linalg.det(cell)))
+    faces = np.linalg.norm(np.cross(cell[[1, 2, 0]], cell[[2, 0, 1]]), axis=1)
+    n = [max(1.0, math.trunc(vol / f / cutoff)) for f in faces]
+    if n[0] * n[1] * n[2] <= 1e5:
+        return
+    rxy, ryz = n[0] / n[1], n[1] / n[2]
+    n2 = math.trunc(math.pow(1e5 / (rxy * ryz * ryz), 1 / 3))
+    n1 = math.trunc(ryz * n2)
+    if min(n2, n1, math.trunc(rxy * n1)) < 1:
+        w = vol / faces
+        raise StructureError(f"cell too large and flat for the neighbour search "
+                             f"({w[0]:.4g} x {w[1]:.4g} x {w[2]:.4g} A between faces)")
+
+
 def _neighbour_pairs(crystal: Crystal, cutoff: float):
     """Unordered pairs within cutoff: vesin, one thread (the scan parallelises
     over structures), one NeighborList object per thread reused across calls."""
+    _check_cell_list(crystal.cell, cutoff)
     nl = getattr(_LOCAL, "nl", None)
     if nl is None:
         from vesin import NeighborList
