@@ -185,7 +185,16 @@ def run(args) -> int:
                 now = time.monotonic()
                 for w in active:
                     if w["conn"] in ready:
-                        failure, summary, seconds = w["conn"].recv()
+                        try:
+                            failure, summary, seconds = w["conn"].recv()
+                        except (EOFError, OSError):  # the worker died under this input
+                            w["proc"].join(5)
+                            code = w["proc"].exitcode
+                            tried += 1
+                            statuses["died"] = statuses.get("died", 0) + 1
+                            _record(groups, out, w["job"], f"worker died: exit code {code}", make)
+                            pool.replace(w)
+                            continue
                         tried += 1
                         key = summary.split(" ")[0]
                         statuses[key] = statuses.get(key, 0) + 1
@@ -213,10 +222,12 @@ def run(args) -> int:
 def _record(groups, out: Path, job, failure: str, make) -> None:
     name, number, data = job
     sig = signature(failure)
+    if failure.startswith(("hang", "worker died")):
+        sig = f"{sig} [{name}]"
     g = groups.setdefault(sig, {"count": 0, "seed": name, "number": number})
     g["count"] += 1
     if g["count"] == 1:
-        stem = sig.split(" ")[0]
+        stem = hashlib.blake2b(sig.encode(), digest_size=5).hexdigest()
         (out / f"{stem}.cif").write_bytes(data if data is not None else make(name, number))
         (out / f"{stem}.txt").write_text(f"seed {name} input {number}\n{sig}\n\n{failure}\n")
 
