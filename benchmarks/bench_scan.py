@@ -4,6 +4,7 @@ pymatgen script doing the naive version of the job on the same files.
     python benchmarks/bench_scan.py                    # 1000 corpus files
     python benchmarks/bench_scan.py --limit 0          # every corpus file
     python benchmarks/bench_scan.py --flat 100000      # + memory on 100,000 entries
+    python benchmarks/bench_scan.py --only-flat --machinery 60000   # the scan's own ceiling
 
 Each measurement runs in a fresh process (so imports, caches and memory do not
 leak between them) and reports files/s and the peak resident memory of the
@@ -215,6 +216,34 @@ def flat(n: int, files: list[str], workdir: str) -> dict:
             "files_per_s": round(sc.entries / wall, 1), "main_rss_mb_at": samples, **mem.stop()}
 
 
+def machinery(n: int, workdir: str, store: bool) -> dict:
+    """The scan's own ceiling: n entries that cost the check next to nothing
+    (a data block with a cell and no atoms: read, rejected, an error row)."""
+    import io
+    import tarfile
+
+    from bondcheck.scan import Scanner
+
+    tpath = os.path.join(workdir, "tiny.tar")
+    if not os.path.exists(tpath):
+        with tarfile.open(tpath, "w") as tf:
+            for i in range(n):
+                data = f"data_kl{i}\n_cell_length_a 5.0\n".encode()
+                info = tarfile.TarInfo(f"tiny-{i:07d}.cif")
+                info.size = len(data)
+                tf.addfile(info, io.BytesIO(data))
+    db = os.path.join(workdir, f"tiny-{time.time_ns()}.sqlite") if store else None
+    cpu0 = time.process_time()
+    t0 = time.perf_counter()
+    sc = Scanner([tpath], store=db, jobs=2, full_rows=False)
+    k = sum(1 for _ in sc.rows())
+    wall = time.perf_counter() - t0
+    return {"name": f"machinery {n}" + (" +store" if store else ""), "entries": k, "wall_s": round(wall, 2),
+            "files_per_s": round(k / wall, 1),
+            "main_cpu_ms_per_file": round(1000 * (time.process_time() - cpu0) / k, 3),
+            "load_after": round(os.getloadavg()[0], 2)}
+
+
 # --------------------------------------------------------------------------
 # driver
 
@@ -241,7 +270,9 @@ def main() -> int:
     ap.add_argument("--limit", type=int, default=1000, help="corpus files to use, spread evenly (0: all)")
     ap.add_argument("--flat", type=int, default=0, metavar="N", help="also scan N entries to watch memory")
     ap.add_argument("--skip-pymatgen", action="store_true")
-    ap.add_argument("--only-flat", action="store_true", help="only the --flat measurement")
+    ap.add_argument("--only-flat", action="store_true", help="only the --flat and --machinery measurements")
+    ap.add_argument("--machinery", type=int, default=0, metavar="N",
+                    help="also scan N entries that cost the check nothing: the scan's own ceiling")
     ap.add_argument("--one", help=argparse.SUPPRESS)
     ap.add_argument("--workdir", help=argparse.SUPPRESS)
     args = ap.parse_args()
@@ -251,6 +282,9 @@ def main() -> int:
         files = [f for f in files if f]
         if args.one.startswith("flat"):
             res = flat(int(args.one.split()[1]), files, args.workdir)
+        elif args.one.startswith("machinery"):
+            parts = args.one.split()
+            res = machinery(int(parts[1]), args.workdir, parts[-1] == "store")
         else:
             res = one(args.one, files, args.workdir)
         print(json.dumps(res))
@@ -277,6 +311,9 @@ def main() -> int:
             print(json.dumps(r), flush=True)
         if args.flat:
             print(json.dumps(run_one(f"flat {args.flat}", wd)), flush=True)
+        if args.machinery:
+            print(json.dumps(run_one(f"machinery {args.machinery}", wd)), flush=True)
+            print(json.dumps(run_one(f"machinery {args.machinery} store", wd)), flush=True)
     if not names:
         return 0
 
