@@ -92,7 +92,10 @@ def _check_cell_list(cell: np.ndarray, cutoff: float) -> None:
     axis gets 0 bins and vesin divides by zero, which kills the process.  The
     bin counts are computed here as vesin computes them.
     """
-    vol = abs(float(np.linalg.det(cell)))
+    (ax, ay, az), (bx, by, bz), (cx, cy, cz) = cell.tolist()
+    vol = abs(ax * (by * cz - bz * cy) - ay * (bx * cz - bz * cx) + az * (bx * cy - by * cx))
+    if vol <= 1e5 * cutoff ** 3:  # the bins are at most vol / cutoff^3 (the usual case, decided cheaply)
+        return
     faces = np.linalg.norm(np.cross(cell[[1, 2, 0]], cell[[2, 0, 1]]), axis=1)
     n = [max(1.0, math.trunc(vol / f / cutoff)) for f in faces]
     if n[0] * n[1] * n[2] <= 1e5:
