@@ -130,9 +130,12 @@ def _answer(e: Entry, job: tuple) -> tuple:
     """What a worker sends back for one entry: (seq, status, rows, blob,
     texts).  The store's blob and the JSON text of each row are made here, in
     parallel, rather than in the main process; ``rows`` are whole only when
-    the main process needs them (job = (options, full_rows))."""
-    options, full = job
-    status, rows = check_entry(e, options)
+    the main process needs them (job = (options, full_rows, limits))."""
+    from .limits import applied
+
+    options, full, limits = job
+    with applied(limits):
+        status, rows = check_entry(e, options)
     texts = []
     for d in rows:  # one encoding per row serves the store and the JSON Lines output
         g = {"path": d.get("path") or ""}
@@ -556,13 +559,17 @@ class Scanner:
     def __init__(self, inputs: Iterable[str], options=None, *, jobs: int | None = None,
                  timeout: float | None = None, store: str | Store | None = None,
                  executor: str = "process", scheduler: str | None = None, client=None,
-                 chunk: int = DEFAULT_CHUNK, retry_failed: bool = False, full_rows: bool = True):
+                 chunk: int = DEFAULT_CHUNK, retry_failed: bool = False, full_rows: bool = True,
+                 limits=None):
         from .api import Options
+        from .limits import current
 
         self.inputs = [os.fspath(i) for i in inputs]
         self.options = options or Options()
         self.okey = settings_key(self.options)
-        self.job = (self.options, full_rows)
+        # the limits in force here (bondcheck.limits) go to the workers too
+        self.limits = limits or current()
+        self.job = (self.options, full_rows, self.limits)
         self.jobs = default_jobs() if not jobs else int(jobs)
         self.timeout = float(timeout) if timeout else None
         self.executor_name = executor
@@ -609,7 +616,13 @@ class Scanner:
         return True
 
     def _take(self, source: Iterator[Entry]) -> Callable[[], Entry | None]:
+        from .limits import applied
+
         def take() -> Entry | None:
+            with applied(self.limits):  # the enumeration reads archives and files under the limits
+                return _take()
+
+        def _take() -> Entry | None:
             if len(self._ready) >= 2000:  # let the rows out before reading on
                 return None
             for e in source:
@@ -1152,7 +1165,7 @@ class _Progress:
 def scan(inputs: Iterable[str], options=None, *, out: Iterable[str] = (), store: str | None = DEFAULT_STORE,
          jobs: int | None = None, timeout: float | None = None, executor: str = "process",
          scheduler: str | None = None, client=None, chunk: int = DEFAULT_CHUNK, retry_failed: bool = False,
-         progress: bool | None = None, top: int = 15) -> Tally:
+         progress: bool | None = None, top: int = 15, limits=None) -> Tally:
     """Scan the inputs; write the rows to each file in ``out`` and return the
     :class:`Tally` (``tally.interrupted`` is set when Ctrl-C stopped it; the
     files written so far are complete and the store resumes the scan)."""
@@ -1160,7 +1173,7 @@ def scan(inputs: Iterable[str], options=None, *, out: Iterable[str] = (), store:
     writers = [open_writer(p) for p in out]
     sc = Scanner(inputs, options, jobs=jobs, timeout=timeout, store=store, executor=executor,
                  scheduler=scheduler, client=client, chunk=chunk, retry_failed=retry_failed,
-                 full_rows=any(not isinstance(w, _JsonlWriter) for w in writers))
+                 full_rows=any(not isinstance(w, _JsonlWriter) for w in writers), limits=limits)
     tally = Tally(top)
     bar = _Progress(inputs) if _show_progress(progress) else None
     rows = sc.rows()

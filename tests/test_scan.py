@@ -275,6 +275,23 @@ def test_a_row_per_data_block(tmp_path):
     assert [r["path"] for r in again] == [r["path"] for r in rows]
 
 
+def test_limits_reach_the_workers(tmp_path):
+    """--max-atoms holds in the worker processes: zincblende SiC (COD 1010995)
+    has 8 atoms in its cubic cell, MoS2 (COD 9007661, 3R) has 9."""
+    from bondcheck.cli import main
+
+    for name in (SIC, MOS2):
+        shutil.copy(MINERALS / name, tmp_path / name)
+    out = tmp_path / "r.jsonl"
+    code = main(["scan", str(tmp_path), "--max-atoms", "8", "--out", str(out), "--no-store", "--jobs", "1",
+                 "--no-progress"])
+    got = _by_entry(read_rows(str(out)))
+    assert got[str(tmp_path / SIC)]["status"] == "ok"
+    assert got[str(tmp_path / MOS2)]["status"] == "error"
+    assert "9" in got[str(tmp_path / MOS2)]["error"] and "8" in got[str(tmp_path / MOS2)]["error"]
+    assert code == 1
+
+
 def test_globs_lists_and_missing_paths(tmp_path):
     for name in (SIC, MOS2, QUARTZ):
         shutil.copy(MINERALS / name, tmp_path / name)

@@ -38,6 +38,10 @@ def register(subparsers) -> None:
                    help="progress bar on standard error (default: on a terminal, off when CI is set)")
     p.add_argument("--format", choices=["text", "json"], default="text", help="format of the closing summary")
     p.add_argument("--top", type=int, default=15, metavar="N", help="entries listed as worth a look (default 15)")
+    p.add_argument("--max-atoms", type=int, metavar="N",
+                   help="turn away a unit cell of more than N atoms (default 50000)")
+    p.add_argument("--max-file-mb", type=float, metavar="MB",
+                   help="turn away a file or archive member larger than this, uncompressed (default 64)")
     p.add_argument("--anions", help="comma-separated anion elements (default: chosen by electronegativity)")
     p.add_argument("--valence", action="append", metavar="El=n", help="override valence electrons, e.g. Eu=2")
     p.set_defaults(run=run)
@@ -63,6 +67,7 @@ def run(args) -> int:
                         render_summary, scan)
     import sqlite3
 
+    from ..record import StructureError
     from ..sources import read_list
 
     def usage(msg: str) -> int:
@@ -91,12 +96,21 @@ def run(args) -> int:
         low = o.lower()
         if o != "-" and not low.endswith((".jsonl", ".ndjson", ".csv", ".parquet", ".pq")):
             return usage(f"cannot tell the format of --out {o}: use .jsonl, .csv or .parquet")
+    if (args.max_atoms is not None and args.max_atoms < 1) or (args.max_file_mb is not None and args.max_file_mb <= 0):
+        return usage("--max-atoms and --max-file-mb must be positive")
+    from ..limits import MB, current
+
+    try:
+        limits = current().but(max_atoms=args.max_atoms,
+                               max_bytes=int(args.max_file_mb * MB) if args.max_file_mb else None)
+    except (ValueError, StructureError) as exc:
+        return usage(str(exc))
     store = None if args.no_store else (args.store or DEFAULT_STORE)
     to_stdout = "-" in args.out
     try:
         tally = scan(inputs, options, out=args.out, store=store, jobs=args.jobs, timeout=args.timeout,
                      executor=args.executor, scheduler=args.scheduler, chunk=args.chunk or DEFAULT_CHUNK,
-                     retry_failed=args.retry_failed, progress=args.progress, top=args.top)
+                     retry_failed=args.retry_failed, progress=args.progress, top=args.top, limits=limits)
     except (RuntimeError, ValueError, OSError, sqlite3.Error) as exc:
         print(f"bondcheck scan: {exc}", file=sys.stderr)
         return EXIT_USAGE
