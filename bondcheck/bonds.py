@@ -92,10 +92,12 @@ def _check_cell_list(cell: np.ndarray, cutoff: float) -> None:
     axis gets 0 bins and vesin divides by zero, which kills the process.  The
     bin counts are computed here as vesin computes them.
     """
-    (ax, ay, az), (bx, by, bz), (cx, cy, cz) = cell.tolist()
-    vol = abs(ax * (by * cz - bz * cy) - ay * (bx * cz - bz * cx) + az * (bx * cy - by * cx))
-    if vol <= 1e5 * cutoff ** 3:  # the bins are at most vol / cutoff^3 (the usual case, decided cheaply)
+    bound = 1.0
+    for x, y, z in cell.tolist():  # bins per axis are at most max(1, length / cutoff)
+        bound *= max(1.0, math.sqrt(x * x + y * y + z * z) / cutoff)
+    if bound <= 1e5:  # the usual case, decided cheaply
         return
+    vol = abs(float(np.linalg.det(cell)))
     faces = np.linalg.norm(np.cross(cell[[1, 2, 0]], cell[[2, 0, 1]]), axis=1)
     n = [max(1.0, math.trunc(vol / f / cutoff)) for f in faces]
     if n[0] * n[1] * n[2] <= 1e5:
@@ -129,9 +131,11 @@ def _references(ratio, zi, zj, i, j, n_atoms, usable, z):
     """Per contact, the criterion-independent references of the relative test:
     the shorter of the two atoms' shortest contacts to each other's element,
     and the shorter of their shortest contacts altogether."""
-    lut = np.zeros(128, dtype=np.int64)
-    zs = np.unique(z)
+    present = np.zeros(128, dtype=bool)
+    present[z] = True
+    zs = np.flatnonzero(present)
     ne = zs.size
+    lut = np.zeros(128, dtype=np.int64)
     lut[zs] = np.arange(ne)
     code_i, code_j = lut[zi], lut[zj]
     ki, kj = i * ne + code_j, j * ne + code_i
@@ -169,8 +173,10 @@ def find_contacts(crystal: Crystal, criterion: Criterion | None = None) -> Conta
     z = crystal.numbers
     n = z.size
     rad = elements.radii()[z]
-    rmax = np.sort(np.unique(rad))[-2:]
-    cutoff = SEARCH * (rmax.sum() if rmax.size == 2 else 2 * rmax[0])
+    # The two largest radii of the elements present (the same floats and
+    # the same sum as np.sort(np.unique(rad))[-2:].sum()).
+    rmax = sorted(set(rad.tolist()))[-2:]
+    cutoff = SEARCH * (rmax[0] + rmax[1] if len(rmax) == 2 else 2 * rmax[0])
     i, j, S, d = _neighbour_pairs(crystal, float(cutoff))
     occ = crystal.occupancy
     ratio = d / (rad[i] + rad[j])
