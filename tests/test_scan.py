@@ -360,7 +360,8 @@ def test_a_worker_killed_under_an_entry_costs_only_that_entry(tmp_path):
     def kill_worker():
         deadline = time.monotonic() + 20
         while time.monotonic() < deadline:
-            workers = [p for p in me.children(recursive=True) if p.ppid() != me.pid]
+            workers = [p for p in me.children(recursive=True)  # forked by the worker server
+                       if p.ppid() != me.pid and "forkserver" in " ".join(p.cmdline())]
             if workers:
                 time.sleep(1.0)  # let it get into the big structure
                 for p in workers:
