@@ -543,7 +543,8 @@ def _local_totals(w: float, opts: dict) -> dict:
 MAX_STATES = 20000
 
 
-REACHED_SIZE = 64
+REACHED_SIZE = 32
+REACHED_STATES = 2000
 
 
 def _reachable(options, lo: float = -math.inf, hi: float = math.inf):
@@ -557,9 +558,11 @@ def _reachable(options, lo: float = -math.inf, hi: float = math.inf):
     if hit is not None:
         cache.move_to_end(key)
         return hit
-    out = cache[key] = _search(options, lo, hi)
-    if len(cache) > REACHED_SIZE:
-        cache.popitem(last=False)
+    out = _search(options, lo, hi)
+    if len(out[0]) <= REACHED_STATES:  # bounded memory: large searches are not kept
+        cache[key] = out
+        if len(cache) > REACHED_SIZE:
+            cache.popitem(last=False)
     return out
 
 
