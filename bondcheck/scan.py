@@ -45,7 +45,7 @@ DEFAULT_CHUNK = 8
 
 # Findings that point at a wrong structure rather than unusual chemistry:
 # they head the list of entries worth a look whenever they are present.
-PRIORITY_SLUGS = {"possibly-misassigned-element": 100.0, "possibly-missing-atoms": 90.0}
+PRIORITY_SLUGS = {"possibly-misassigned-element": 100.0, "missing-hydrogen": 95.0, "possibly-missing-atoms": 90.0}
 SEVERITY_SCORE = {"error": 50.0, "warning": 10.0}
 FAILED_SCORE = 30.0      # an entry that could not be checked (status error or timeout)
 MISMATCH_BONUS = 5.0
@@ -947,10 +947,16 @@ def worth_a_look(row: dict) -> tuple[float, str]:
     score, reason = 0.0, ""
     if row.get("status") in ("error", "timeout"):
         score, reason = FAILED_SCORE, f"{row['status']}: {row.get('error') or ''}"
-    for f in row.get("findings") or []:
+    findings = row.get("findings") or []
+    for f in findings:
         s = PRIORITY_SLUGS.get(f.get("slug"), SEVERITY_SCORE.get(f.get("severity"), 0.0))
         if s > score:
             score, reason = s, f"{f.get('slug')}: {f.get('message') or ''}"
+    # Findings come most likely cause first: among the structure-level
+    # findings, name the one the diagnosis ranks highest.
+    first = next((f for f in findings if f.get("slug") in PRIORITY_SLUGS), None)
+    if first is not None:
+        reason = f"{first.get('slug')}: {first.get('message') or ''}"
     if score and row.get("verdict") == "mismatch":
         score += MISMATCH_BONUS
     return score, reason
