@@ -45,6 +45,7 @@ MAX_ARCHIVE_BYTES = 64 * GB
 MAX_ARCHIVE_ENTRIES = 2_000_000
 
 _CHUNK = 1 * MB
+_FIRST = 64 * 1024
 
 
 @dataclass(frozen=True, slots=True)
@@ -149,9 +150,21 @@ def check_atoms(n: int, limit: int, *, at_least: bool = False) -> None:
                              "(raise it with --max-atoms or max_atoms=)")
 
 
-def read_capped(fh, limit: int, what: str = "file") -> bytes:
-    """Read a binary stream to its end in chunks, stopping past ``limit`` bytes."""
+def read_capped(fh, limit: int, what: str = "file", size: int | None = None) -> bytes:
+    """Read a binary stream to its end in chunks, stopping past ``limit`` bytes.
+
+    ``size`` (a regular file's size) sets the first read: one read of exactly
+    what is there, rather than a megabyte buffer allocated for a small file.
+    """
     parts, total = [], 0
+    first = min(size + 1, limit + 1) if size is not None else min(_FIRST, limit + 1)
+    chunk = fh.read(first)
+    if len(chunk) < first:  # the whole stream at once: the usual case
+        return chunk
+    parts.append(chunk)
+    total = len(chunk)
+    if total > limit:
+        raise size_error(total, limit, what, at_least=True)
     while True:
         chunk = fh.read(min(_CHUNK, limit + 1 - total))
         if not chunk:

@@ -192,9 +192,11 @@ def _read_bytes(path, max_bytes: int) -> bytes:
     try:
         with open(path, "rb") as fh:
             st = os.fstat(fh.fileno())
+            size = None
             if stat.S_ISREG(st.st_mode):
-                limits.check_size(st.st_size, max_bytes)
-            data = limits.read_capped(fh, max_bytes)
+                size = st.st_size
+                limits.check_size(size, max_bytes)
+            data = limits.read_capped(fh, max_bytes, size=size)
     except FileNotFoundError:
         raise StructureError(f"no such file: {path}") from None
     except IsADirectoryError:
@@ -1221,11 +1223,17 @@ def _crystal_from_block(block, source: str, max_atoms: int = limits.MAX_ATOMS) -
     pos, site, setting, completed, nops = best
 
     labels = np.array(labels)
+    # A copy needs two sites of one element (images of one site are merged
+    # by the expansion already); most symmetric files have none.
+    dup = None
+    if len(set(numbers.tolist())) < nrow:
+        dup = True
     if site is not None:
         numbers, occ, labels, charges = numbers[site], occ[site], labels[site], charges[site]
     limits.check_atoms(len(pos), max_atoms)
     meta = {"format": "cif", "spacegroup": hm, "symmetry": how, "nsymops": nops}
-    dup = _duplicates(pos, cell, widths, numbers, occ)
+    if dup:
+        dup = _duplicates(pos, cell, widths, numbers, occ)
     if dup is not None:
         keep = ~dup
         meta["merged_duplicates"] = int(dup.sum())

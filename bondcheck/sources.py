@@ -202,7 +202,7 @@ def _one_path(path: str, load: bool) -> Iterator[Entry]:
                 size = os.fstat(fh.fileno()).st_size
                 if size > cap:
                     raise size_error(size, cap)
-                data = read_capped(fh, cap)
+                data = read_capped(fh, cap, size=size)
         except OSError as exc:
             yield Entry(path, name, path=path, error=f"cannot read file: {exc.strerror or exc}")
             return
