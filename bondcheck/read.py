@@ -1107,6 +1107,28 @@ def _duplicates(pos: np.ndarray, cell: np.ndarray, widths: list[float], numbers:
     return dup
 
 
+def _duplicate_sites(frac: np.ndarray, cell: np.ndarray, group: _Group, numbers: np.ndarray,
+                     occ: np.ndarray) -> np.ndarray | None:
+    """Sites that repeat an earlier site of the same element: the site lies
+    within MERGE_TOL of an image of the earlier one, so that its whole orbit
+    falls on that one's (occupancies adding to more than 1, as in
+    :func:`_duplicates`).  A mask over the sites, or None."""
+    rows, cols = _pairs(len(frac))
+    sel = (numbers[cols] == numbers[rows]) & (occ[rows] + occ[cols] > 1.0 + OCC_TOL)
+    if not sel.any():
+        return None
+    rows, cols = rows[sel], cols[sel]
+    d = np.einsum("kij,pj->pki", group.rot, frac[rows]) + group.tran - frac[cols][:, None, :]  # (p, m, 3)
+    d -= np.rint(d)
+    d = d @ cell
+    near = ((d * d).sum(2) < MERGE_TOL ** 2).any(1)
+    if not near.any():
+        return None
+    dup = np.zeros(len(frac), dtype=bool)
+    dup[cols[near]] = True
+    return dup
+
+
 def _wrap(frac: np.ndarray) -> np.ndarray:
     """Fractional coordinates into [0, 1), C-contiguous."""
     frac = np.subtract(frac, np.floor(frac), order="C")
@@ -1219,20 +1241,26 @@ def _crystal_from_block(block, source: str, max_atoms: int = limits.MAX_ATOMS) -
                 continue
             if len(pos) == len(best[0]) and _min_distance(pos, cell) <= _min_distance(best[0], cell):
                 continue
-        best = (pos, site, setting, group.completed, len(group.rot))
-    pos, site, setting, completed, nops = best
+        best = (pos, site, setting, group)
+    pos, site, setting, group = best
+    completed, nops = group.completed, len(group.rot)
 
     labels = np.array(labels)
     # A copy needs two sites of one element (images of one site are merged
-    # by the expansion already); most symmetric files have none.
+    # by the expansion already); most symmetric files have none.  With few
+    # sites, sites are compared with the images of the others; otherwise atoms.
     dup = None
     if len(set(numbers.tolist())) < nrow:
-        dup = True
+        if site is not None and nrow <= _FEW:
+            dup = _duplicate_sites(frac, cell, group, numbers, occ)
+            dup = None if dup is None else dup[site]
+        else:
+            dup = False
     if site is not None:
         numbers, occ, labels, charges = numbers[site], occ[site], labels[site], charges[site]
     limits.check_atoms(len(pos), max_atoms)
     meta = {"format": "cif", "spacegroup": hm, "symmetry": how, "nsymops": nops}
-    if dup:
+    if dup is False:
         dup = _duplicates(pos, cell, widths, numbers, occ)
     if dup is not None:
         keep = ~dup
