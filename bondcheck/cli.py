@@ -51,6 +51,8 @@ def build_parser() -> argparse.ArgumentParser:
     c.add_argument("--anions", help="comma-separated anion elements, e.g. Ga,Ge (default: chosen by electronegativity)")
     c.add_argument("--valence", action="append", metavar="El=n", help="override valence electrons, e.g. Eu=2 (repeatable)")
     c.add_argument("--block", help="check only this data block of a multi-block CIF")
+    c.add_argument("--no-symmetry", action="store_true",
+                   help="skip the space-group search: sites grouped by environment, no Wyckoff letters; same electron count, faster")
     c.add_argument("--max-atoms", type=_positive(int), metavar="N",
                    help="turn away a unit cell of more than N atoms (default 50000)")
     c.add_argument("--max-file-mb", type=_positive(float), metavar="MB",
@@ -126,7 +128,7 @@ def _check(parser, args) -> int:
     for el in list(valence) + (anions or []):
         if el not in known:
             parser.error(f"unknown element {el!r}")
-    opts = Options(anions=anions, valence=valence, criterion=Criterion())
+    opts = Options(anions=anions, valence=valence, criterion=Criterion(), symmetry=not args.no_symmetry)
     sources = []
     missing = []
     for p in args.paths:

@@ -622,31 +622,31 @@ SCALES = (0.94, 0.97, 1.03, 1.06)
 
 def _cutoff_range(case: Case, verdict: str) -> list[F.Finding]:
     """When contacts sit near the criterion, the range of criterion scales over
-    which the verdict holds."""
+    which the verdict holds: walk outward from 1 on each side and stop at the
+    first scale where it fails (only the continuous range is reported)."""
     if not case.fragile_sites:
         return []
-    holds = [1.0]
-    for f in SCALES:
-        crit = case.criterion.scaled(f)
+
+    def holds(f: float) -> bool:
+        contacts = rescaled(case.crystal, case.contacts, case.criterion.scaled(f))
+        if np.array_equal(contacts.bonded, case.contacts.bonded):
+            return True  # the same bonds give the same count
         try:
-            contacts = rescaled(case.crystal, case.contacts, crit)
             cc = count(case.crystal, contacts, case.sites, case.anions, case.valence)
-        except Exception:
-            continue
+        except Exception:  # a variant that cannot be counted ends the range
+            return False
         v = NOT_APPLICABLE if cc is None else (CONSISTENT if cc.closure.closes else MISMATCH)
-        if v == verdict:
-            holds.append(f)
-    lo, hi = min(holds), max(holds)
-    # Contiguous range around 1.
-    grid = sorted(set(SCALES) | {1.0})
-    i = grid.index(1.0)
-    a = i
-    while a > 0 and grid[a - 1] in holds:
-        a -= 1
-    b = i
-    while b < len(grid) - 1 and grid[b + 1] in holds:
-        b += 1
-    lo, hi = grid[a], grid[b]
+        return v == verdict
+
+    lo = hi = 1.0
+    for f in sorted((x for x in SCALES if x < 1), reverse=True):
+        if not holds(f):
+            break
+        lo = f
+    for f in sorted(x for x in SCALES if x > 1):
+        if not holds(f):
+            break
+        hi = f
     pct = f"{(lo - 1) * 100:+.0f}% to {(hi - 1) * 100:+.0f}%"
     return [F.AmbiguousCutoff(sites=case.fragile_sites, n=len(case.fragile_sites), pct=3,
                               rng=pct, evidence={"sites": case.fragile_sites, "verdict_holds_for_scale": [lo, hi]})]

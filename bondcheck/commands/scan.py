@@ -44,6 +44,8 @@ def register(subparsers) -> None:
                    help="turn away a file or archive member larger than this, uncompressed (default 64)")
     p.add_argument("--anions", help="comma-separated anion elements (default: chosen by electronegativity)")
     p.add_argument("--valence", action="append", metavar="El=n", help="override valence electrons, e.g. Eu=2")
+    p.add_argument("--no-symmetry", action="store_true",
+                   help="skip the space-group search: sites grouped by environment, no Wyckoff letters; same electron count, faster")
     p.set_defaults(run=run)
 
 
@@ -59,7 +61,7 @@ def _options(args):
     for el in list(valence) + (anions or []):
         if el not in known:
             raise argparse.ArgumentTypeError(f"unknown element {el!r}")
-    return Options(anions=anions, valence=valence, criterion=Criterion())
+    return Options(anions=anions, valence=valence, criterion=Criterion(), symmetry=not getattr(args, "no_symmetry", False))
 
 
 def run(args) -> int:

@@ -446,7 +446,7 @@ def _sites_table(r: dict) -> str:
         tds = []
         for h, key, nd in cols:
             if key is None:
-                tds.append(f"<td>{esc(s.get('multiplicity', ''))}{esc(s.get('wyckoff', ''))}</td>")
+                tds.append(f"<td>{esc(s.get('multiplicity') or '')}{esc(s.get('wyckoff') or '') or '&ndash;'}</td>")
             elif nd:
                 val = _f(s.get(key), nd)
                 if key == "first_unbonded" and s.get("fragile"):

@@ -38,7 +38,7 @@ def render_one(r) -> str:
     if r.status != "ok":
         lines.append(f"   error: {r.error}")
         return "\n".join(lines)
-    lines.append(f"   {r.formula}   space group {r.spacegroup}")
+    lines.append(f"   {r.formula}   space group {r.spacegroup or 'not determined (--no-symmetry)'}")
     lines.append(f"   verdict: {VERDICT_WORDS.get(r.verdict, r.verdict)}" + (f"  [{', '.join(r.causes)}]" if r.causes else ""))
     if r.anions:
         lines.append(f"   split: cations {' '.join(r.cations) or '-'} | anions {' '.join(r.anions)}")
@@ -62,7 +62,7 @@ def render_one(r) -> str:
             [
                 s["label"],
                 s["element"],
-                f"{s['multiplicity']}{s['wyckoff']}",
+                f"{s['multiplicity'] or ''}{s['wyckoff'] or ''}" or "-",
                 _f(s["occupancy"], 3).rstrip("0").rstrip(".") if s["occupancy"] != 1 else "1",
                 s["role"] or "-",
                 _f(s["bonds"]),
