@@ -146,3 +146,13 @@ def test_help_is_fast_and_light():
     code = "import sys, bondcheck.cli; bondcheck.cli.build_parser(); print(sorted(m for m in ('pymatgen', 'ase', 'matplotlib', 'dask', 'spglib') if m in sys.modules))"
     p = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=60)
     assert p.stdout.strip() == "[]", p.stdout
+
+
+def test_no_symmetry_option_same_count(minerals):
+    # Cobaltite (ase's bundled COD 9004218): the count does not depend on the space-group search.
+    full = json.loads(run("check", str(minerals / "cod_9004218.cif"), "--format", "json").stdout)[0]
+    fast = json.loads(run("check", str(minerals / "cod_9004218.cif"), "--format", "json", "--no-symmetry").stdout)[0]
+    for key in ("verdict", "anions", "vec_anion", "aa_observed", "cc_observed", "residual"):
+        assert fast[key] == full[key]
+    assert fast["spacegroup"] == "" and all(s["wyckoff"] is None for s in fast["sites"])
+    assert full["spacegroup"].startswith("Pca2_1")
