@@ -71,9 +71,20 @@ class Result:
 
     def to_dict(self) -> dict[str, Any]:
         d = {k: getattr(self, k) for k in self.__slots__ if k != "findings"}
-        d["findings"] = [f.to_dict() if hasattr(f, "to_dict") else f for f in self.findings]
+        d["findings"] = [_finite(f.to_dict() if hasattr(f, "to_dict") else f) for f in self.findings]
         d["seconds"] = round(self.seconds, 5)
         return d
+
+
+def _finite(x):
+    """Evidence with any non-finite float turned into null (JSON has no inf or nan)."""
+    if isinstance(x, float):
+        return x if math.isfinite(x) else None
+    if isinstance(x, dict):
+        return {k: _finite(v) for k, v in x.items()}
+    if isinstance(x, (list, tuple)):
+        return [_finite(v) for v in x]
+    return x
 
 
 def _r3(x: float | None) -> float | None:
@@ -310,7 +321,7 @@ def iter_inputs(sources: Iterable) -> Iterator:
 def check_all(sources, *, anions=None, valence=None, criterion=None, options=None) -> list[Result]:
     """Check every structure in the given files, directories and objects; an
     unreadable input gives a Result with status 'error' and the rest go on."""
-    from .read import read
+    from .read import read_blocks
 
     if isinstance(sources, (str, Path)) or not isinstance(sources, Iterable):
         sources = [sources]
@@ -320,7 +331,8 @@ def check_all(sources, *, anions=None, valence=None, criterion=None, options=Non
         path = str(src) if isinstance(src, (str, Path)) else type(src).__name__
         t0 = time.perf_counter()
         try:
-            crystals = read(src)
+            # One item per data block: a bad block gives its own error row.
+            crystals = read_blocks(src)
         except StructureError as exc:
             out.append(Result(path=path, status="error", error=str(exc), seconds=time.perf_counter() - t0))
             continue
@@ -328,6 +340,10 @@ def check_all(sources, *, anions=None, valence=None, criterion=None, options=Non
             out.append(Result(path=path, status="error", error=f"unexpected {type(exc).__name__}: {exc}", seconds=time.perf_counter() - t0))
             continue
         for cr in crystals:
+            if isinstance(cr, StructureError):
+                where = getattr(cr, "source", "") or path
+                out.append(Result(path=where, status="error", error=str(cr), seconds=time.perf_counter() - t0))
+                continue
             try:
                 out.append(check_crystal(cr, opts))
             except Exception as exc:

@@ -156,3 +156,16 @@ def test_no_symmetry_option_same_count(minerals):
         assert fast[key] == full[key]
     assert fast["spacegroup"] == "" and all(s["wyckoff"] is None for s in fast["sites"])
     assert full["spacegroup"].startswith("Pca2_1")
+
+
+def test_bad_block_does_not_cost_the_good_one(tmp_path, minerals):
+    # Moissanite (ase's bundled COD 1010995) followed by a block with an unknown element.
+    good = (minerals / "cod_1010995.cif").read_text()
+    bad = "\ndata_broken\n_cell_length_a 4.0\n_cell_length_b 4.0\n_cell_length_c 4.0\nloop_\n_atom_site_label\n_atom_site_type_symbol\n_atom_site_fract_x\n_atom_site_fract_y\n_atom_site_fract_z\nQ1 Qq 0 0 0\n"
+    (tmp_path / "two.cif").write_text(good + bad)
+    p = run("check", str(tmp_path / "two.cif"), "--format", "json")
+    rows = json.loads(p.stdout)
+    assert p.returncode == 2 and len(rows) == 2
+    assert sorted(r["status"] for r in rows) == ["error", "ok"]
+    ok = next(r for r in rows if r["status"] == "ok")
+    assert ok["verdict"] == "consistent" and ok["vec_anion"] == 8.0
