@@ -106,8 +106,7 @@ def formula_of(crystal: Crystal) -> tuple[str, float]:
     if all(abs(a - round(a)) < 1e-3 for a in amounts.values()) and min(ints) > 0:
         g = reduce(math.gcd, ints)
     else:
-        g = 1
-        # Scale to the most abundant integer-like normalisation.
+        g = 1  # partial occupancy: amounts per cell as they are
     order = sorted(amounts, key=lambda z: (en[z], z))
     parts = []
     for z in order:

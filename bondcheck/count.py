@@ -110,10 +110,6 @@ class Count:
     valid: bool = True
     note: str = ""
 
-    @property
-    def status(self) -> str:
-        return "closes" if self.closure.closes else "open"
-
 
 def candidate_partitions(crystal: Crystal) -> list[tuple[list[str], str]]:
     """Anion sets to try, in order: the most electronegative anion-capable

@@ -467,13 +467,13 @@ def _swap_targets(z: int) -> list[int]:
         if not 1 <= t <= 103:
             continue
         rt = elements.table()[syms[t]]
-        if rt["row"] != row or rt["group"] == 18 or row_is_noble(z):
+        if rt["row"] != row or rt["group"] == 18 or _is_noble(z):
             continue
         out.append(t)
     return out
 
 
-def row_is_noble(z: int) -> bool:
+def _is_noble(z: int) -> bool:
     return elements.table()[elements.symbols()[z]]["group"] == 18
 
 
