@@ -601,19 +601,24 @@ def _search(options, lo: float = -math.inf, hi: float = math.inf):
     for L, (g, local) in enumerate(locs):
         slack = (n - L) * 1e-4 + 1e-6
         a, b = lo - slack - rest_hi[L], hi + slack - rest_lo[L]
-        new: dict[float, tuple[float, tuple | None]] = {}
-        items = list(local.items())
-        for t0, (c0, p0) in states.items():
-            if t0 < a or t0 > b:
-                continue
-            for t1, (c1, k, mixed) in items:
-                t = round(t0 + t1, 4)
-                cost = c0 + c1
-                old = new.get(t)
-                if old is None or old[0] > cost:
-                    new[t] = (cost, (g, k, mixed, p0))
-        states = new
+        states = _combine(states, list(local.items()), g, a, b)
     return states, top
+
+
+def _combine(states, items, g, a=-math.inf, b=math.inf):
+    """Add one group's choices to every total in [a, b], keeping the cheapest
+    way to each new total and a back-pointer to how it was reached."""
+    new: dict[float, tuple[float, tuple | None]] = {}
+    for t0, (c0, p0) in states.items():
+        if t0 < a or t0 > b:
+            continue
+        for t1, (c1, k, mixed) in items:
+            t = round(t0 + t1, 4)
+            cost = c0 + c1
+            old = new.get(t)
+            if old is None or old[0] > cost:
+                new[t] = (cost, (g, k, mixed, p0))
+    return new
 
 
 def _few_totals(locs) -> bool:
@@ -638,16 +643,7 @@ def _enumerate(options):
     for g, w, opts, _v in options:
         if not opts:
             return {}, 0.0
-        local = _local_totals(w, opts)
-        new: dict[float, tuple[float, tuple | None]] = {}
-        for t0, (c0, p0) in states.items():
-            for t1, (c1, k, mixed) in local.items():
-                t = round(t0 + t1, 4)
-                cost = c0 + c1
-                old = new.get(t)
-                if old is None or old[0] > cost:
-                    new[t] = (cost, (g, k, mixed, p0))
-        states = new
+        states = _combine(states, list(_local_totals(w, opts).items()), g)
         if len(states) > MAX_STATES:
             break
     return states, max(states, default=0.0)
