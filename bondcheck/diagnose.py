@@ -58,6 +58,34 @@ def _label(crystal: Crystal, atoms) -> str:
 
 def diagnose(crystal, contacts, sites, c, fragile_sites, anions=None, valence=None, criterion=None):
     """Return (verdict, findings ranked most likely first, anion components)."""
+    verdict, found, components = _diagnose(crystal, contacts, sites, c, fragile_sites, anions, valence, criterion)
+    return verdict, found + _repairs(crystal), components
+
+
+# What the reader records in Crystal.meta when it mends a file.
+REPAIRS = {
+    "quote_repairs": "{} unclosed quote(s) closed",
+    "preamble_lines": "{} line(s) before the first data block skipped",
+    "renamed_blocks": "repeated data-block names renamed ({})",
+    "repeated_tags": "repeated tags, first value kept ({})",
+    "merged_duplicates": "{} atom(s) listed twice merged",
+    "symmetry_completed": "the list of symmetry operators completed",
+}
+
+
+def _repairs(crystal: Crystal) -> list[F.Finding]:
+    meta = crystal.meta or {}
+    what = []
+    for key, text in REPAIRS.items():
+        v = meta.get(key)
+        if v:
+            what.append(text.format(", ".join(map(str, v)) if isinstance(v, (list, tuple)) else v))
+    if not what:
+        return []
+    return [F.FileRepaired(what="; ".join(what), evidence={k: meta[k] for k in REPAIRS if meta.get(k)})]
+
+
+def _diagnose(crystal, contacts, sites, c, fragile_sites, anions=None, valence=None, criterion=None):
     case = Case(crystal, contacts, sites, c, anions, dict(valence or {}), criterion or Criterion(), list(fragile_sites))
     out: list[F.Finding] = []
     syms = elements.symbols()

@@ -338,3 +338,17 @@ class MissingHydrogen(Finding):
     meaning = "O or N atoms are electron-short by whole electrons and the model has no H: hydroxide, water or amine hydrogens were probably not located."
     fires_when = "The residual is negative by a whole number of electrons per formula unit, at most two per O or N atom, the anions include O or N, and no H is in the file."
     next_steps = "Locate H in a difference map or place it geometrically; check hydrogen-bond distances between O atoms."
+
+
+@register
+class FileRepaired(Finding):
+    slug = "file-repaired"
+    template = "the reader mended the file: {what}"
+    title = "Input mended while reading"
+    meaning = (
+        "Files from the wild often carry small slips: an unclosed quote, a banner line before the first data block, "
+        "a repeated data-block name or tag, an atom listed twice, an incomplete list of symmetry operators. The reader "
+        "mends these and says so, because the model checked is then not byte for byte what the file says."
+    )
+    fires_when = "Reading needed one of these repairs."
+    next_steps = "Fix the file at its source, so that other programs read the same structure."

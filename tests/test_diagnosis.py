@@ -280,3 +280,14 @@ def test_explain_every_finding():
     p = subprocess.run([sys.executable, "-m", "bondcheck.cli", "explain", "possibly-misassigned-element"],
                        capture_output=True, text=True, timeout=60)
     assert p.returncode == 0 and "same period" in p.stdout
+
+
+def test_file_repairs_are_reported(minerals, tmp_path):
+    # Moissanite (ase's bundled COD 1010995) behind a banner line without '#': read, mended, and said so.
+    p = tmp_path / "banner.cif"
+    p.write_text("Copyright line from a database export\n" + (minerals / "cod_1010995.cif").read_text())
+    r = check(p)
+    assert r.verdict == "consistent" and r.causes == []
+    f = finding(r, "file-repaired")
+    assert f.level == "info" and f.evidence == {"preamble_lines": 1}
+    assert "file-repaired" not in slugs(check(minerals / "cod_1010995.cif"))
