@@ -191,13 +191,9 @@ def _fragile_sites(crystal, contacts, sites, c: Count | None, options: Options, 
     labels = []
     for s in np.unique(sites.site[atoms]):
         rep = int(sites.representative[s])
-        labels.append(_atom_label(crystal, rep))
+        labels.append(crystal.label(rep))
     return labels
 
-
-def _atom_label(crystal: Crystal, k: int) -> str:
-    lab = str(crystal.labels[k]) if len(crystal.labels) else ""
-    return lab or f"{elements.symbols()[int(crystal.numbers[k])]}{k + 1}"
 
 
 def _group_mean(x: np.ndarray, inv: np.ndarray, counts: np.ndarray) -> np.ndarray:
@@ -221,7 +217,6 @@ def _group_extreme(x: np.ndarray, inv: np.ndarray, ng: int, fn) -> np.ndarray:
 
 def _site_rows(crystal, sites, c: Count | None, coord, nearest, last, first_out, fragile) -> list[dict]:
     """One row per (site, element), in order of the first atom of each."""
-    syms = elements.symbols()
     numbers = crystal.numbers
     key = sites.site.astype(np.int64) * 128 + numbers
     uniq, first, inv = np.unique(key, return_index=True, return_inverse=True)
@@ -248,7 +243,7 @@ def _site_rows(crystal, sites, c: Count | None, coord, nearest, last, first_out,
         s = site_of[u]
         sym, _block, valence, keep_opts = _element_facts(z_of[u])
         row = {
-            "label": _atom_label(crystal, k),
+            "label": crystal.label(k),
             "element": sym,
             "multiplicity": None if mult is None else int(mult[s]),
             "wyckoff": sites.wyckoff[s],

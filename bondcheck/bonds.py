@@ -191,7 +191,7 @@ def find_contacts(crystal: Crystal, criterion: Criterion | None = None) -> Conta
             k = int(np.flatnonzero(full)[0])
             a, b = int(i[k]), int(j[k])
             raise StructureError(
-                f"atoms {_name(crystal, a)} and {_name(crystal, b)} are {d[k]:.2f} A apart "
+                f"atoms {crystal.label(a)} and {crystal.label(b)} are {d[k]:.2f} A apart "
                 "(overlapping atoms; duplicated or misplaced site?)"
             )
     alt = (occ[i] + occ[j] <= 1.0 + 1e-3) & (close | (ratio < 0.75))
@@ -229,10 +229,6 @@ def rescaled(crystal: Crystal, contacts: Contacts, criterion: Criterion) -> Cont
         bonded = decide(c.ratio, z[c.i], z[c.j], c.i, c.j, crystal.natoms, c.ionic_pair, criterion)
     return replace(c, bonded=bonded)
 
-
-def _name(crystal: Crystal, k: int) -> str:
-    lab = str(crystal.labels[k]) if len(crystal.labels) else ""
-    return lab or f"{elements.symbols()[int(crystal.numbers[k])]}#{k}"
 
 
 def per_atom(contacts: Contacts, n_atoms: int, occupancy: np.ndarray):

@@ -59,18 +59,6 @@ METAL_ANION_EN = 2.2
 _LOCAL = threading.local()
 
 
-def _capable_by_z() -> np.ndarray:
-    global _CAPABLE
-    if _CAPABLE is None:
-        _CAPABLE = np.zeros(128, dtype=bool)
-        for sym, row in elements.table().items():
-            _CAPABLE[row["Z"]] = elements.can_be_anion(sym)
-    return _CAPABLE
-
-
-_CAPABLE = None
-
-
 def target(sym: str) -> int:
     return 2 if sym in ("H", "He") else 8
 
@@ -225,7 +213,7 @@ def _static(crystal: Crystal, sites: Sites, valence: dict[str, int]) -> tuple:
     val_atom = val[z]
     electrons = float(np.sum(occ * val_atom))
     ep_atom = elements.electropositive_by_z()[z]
-    capable_atom = _capable_by_z()[z]
+    capable_atom = elements.capable_by_z()[z]
     # Groups: one per (site, element).
     key = site.astype(np.int64) * 128 + z
     uniq, group_of = np.unique(key, return_inverse=True)
@@ -271,7 +259,7 @@ class _Context:
         en = elements.pauling().tolist()
         nums = elements.numbers()
         syms = elements.symbols()
-        capable = _capable_by_z().tolist()
+        capable = elements.capable_by_z().tolist()
         anions = list(start)
         z = self.crystal.numbers
         pairs = list(zip(z[self.bi].tolist(), z[self.bj].tolist()))

@@ -50,10 +50,9 @@ def _fmt(x: float) -> str:
 
 
 def _label(crystal: Crystal, atoms) -> str:
+    """Label of the first atom of a boolean mask or an index list."""
     atoms = np.asarray(atoms)
-    k = int(np.flatnonzero(atoms)[0]) if atoms.dtype == bool else int(atoms[0])
-    lab = str(crystal.labels[k]) if len(crystal.labels) else ""
-    return lab or f"{elements.symbols()[int(crystal.numbers[k])]}{k + 1}"
+    return crystal.label(int(np.flatnonzero(atoms)[0]) if atoms.dtype == bool else int(atoms[0]))
 
 
 def diagnose(crystal, contacts, sites, c, fragile_sites, anions=None, valence=None, criterion=None):
@@ -179,7 +178,7 @@ def _occupancy(case: Case, partial: np.ndarray) -> F.Finding:
 
 
 def _explanations(case: Case) -> list[F.Finding]:
-    crystal, contacts, c = case.crystal, case.contacts, case.count
+    crystal, c = case.crystal, case.count
     out: list[F.Finding] = []
     syms = elements.symbols()
     cl = c.closure
@@ -610,35 +609,18 @@ def _missing(case: Case) -> list[F.Finding]:
                 per = f"{n_h / (c.n_anion / z_cell):.2g} per anion"
                 return [F.MissingHydrogen(rank=0.97, n=_fmt(round(n_h)), per=per,
                                           evidence={"electrons_short_per_formula": round(short, 3)})]
-        for s in present:
-            if s in c.anions:
-                continue
-            v = elements.valence(s)
-            k = short / v
-            if v and abs(k - round(k)) < 0.05 and 1 <= round(k) <= 4:
-                out.append(F.MissingAtoms(rank=0.5, what=f"{_fmt(round(k))} more {s}",
-                                          evidence={"electrons_per_formula": round(e_formula, 3), "element": s, "count": round(k)}))
-        for s in anion_syms:
-            need = target(s) - elements.valence(s)
-            k = short / need if need else 0
-            if need and abs(k - round(k)) < 0.05 and 1 <= round(k) <= 4:
-                out.append(F.MissingAtoms(rank=0.45, what=f"{_fmt(round(k))} {s} fewer",
-                                          evidence={"electrons_per_formula": round(e_formula, 3), "element": s, "count": -round(k)}))
-    else:
-        for s in anion_syms:
-            need = target(s) - elements.valence(s)
-            k = e_formula / need if need else 0
-            if need and abs(k - round(k)) < 0.05 and 1 <= round(k) <= 4:
-                out.append(F.MissingAtoms(rank=0.5, what=f"{_fmt(round(k))} more {s}",
-                                          evidence={"electrons_per_formula": round(e_formula, 3), "element": s, "count": round(k)}))
-        for s in present:
-            if s in c.anions:
-                continue
-            v = elements.valence(s)
-            k = e_formula / v if v else 0
-            if v and abs(k - round(k)) < 0.05 and 1 <= round(k) <= 4:
-                out.append(F.MissingAtoms(rank=0.45, what=f"{_fmt(round(k))} {s} fewer",
-                                          evidence={"electrons_per_formula": round(e_formula, 3), "element": s, "count": -round(k)}))
+    # Electrons missing: more cations or fewer anions; in excess: the reverse.
+    # One atom carries its valence (a cation) or its shell's gap (an anion).
+    cations = [s for s in present if s not in c.anions]
+    more, fewer = (cations, anion_syms) if e_formula < 0 else (anion_syms, cations)
+    for group, sign, rank in ((more, 1, 0.5), (fewer, -1, 0.45)):
+        for s in group:
+            unit = elements.valence(s) if s in cations else target(s) - elements.valence(s)
+            k = abs(e_formula) / unit if unit else 0
+            if unit and abs(k - round(k)) < 0.05 and 1 <= round(k) <= 4:
+                what = f"{_fmt(round(k))} more {s}" if sign > 0 else f"{_fmt(round(k))} {s} fewer"
+                out.append(F.MissingAtoms(rank=rank, what=what, evidence={
+                    "electrons_per_formula": round(e_formula, 3), "element": s, "count": sign * round(k)}))
     return out[:3]
 
 

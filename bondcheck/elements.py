@@ -81,12 +81,17 @@ def valence(sym: str) -> int:
     return DLIKE_ACTINIDES.get(sym, 3)
 
 
+def _per_z(func, dtype) -> np.ndarray:
+    """func(symbol) for every element, as an array indexed by atomic number."""
+    arr = np.zeros(104, dtype=dtype)
+    for sym, row in table().items():
+        arr[row["Z"]] = func(sym)
+    return arr
+
+
 @lru_cache(maxsize=1)
 def valence_by_z() -> np.ndarray:
-    arr = np.zeros(104, dtype=float)
-    for sym, row in table().items():
-        arr[row["Z"]] = valence(sym)
-    return arr
+    return _per_z(valence, float)
 
 
 def block(sym: str) -> str:
@@ -104,10 +109,7 @@ def is_electropositive(sym: str) -> bool:
 
 @lru_cache(maxsize=1)
 def electropositive_by_z() -> np.ndarray:
-    arr = np.zeros(104, dtype=bool)
-    for sym, row in table().items():
-        arr[row["Z"]] = is_electropositive(sym)
-    return arr
+    return _per_z(is_electropositive, bool)
 
 
 def can_be_anion(sym: str) -> bool:
@@ -115,6 +117,11 @@ def can_be_anion(sym: str) -> bool:
     metals of the s, d and f blocks only when they are the most electronegative
     element present (aurides, platinides)."""
     return sym == "H" or table()[sym]["block"] == "p" or sym == "He"
+
+
+@lru_cache(maxsize=1)
+def capable_by_z() -> np.ndarray:
+    return _per_z(can_be_anion, bool)
 
 
 def oxidation_states(sym: str) -> tuple[frozenset[int], frozenset[int]]:

@@ -51,3 +51,13 @@ class Crystal:
     @property
     def cartesian(self) -> np.ndarray:
         return self.frac @ self.cell
+
+    def label(self, k: int) -> str:
+        """Site label of atom k, or element symbol and 1-based index when the
+        file gave none."""
+        lab = str(self.labels[k]) if len(self.labels) else ""
+        if lab:
+            return lab
+        from .elements import symbols
+
+        return f"{symbols()[int(self.numbers[k])]}{k + 1}"

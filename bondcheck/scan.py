@@ -51,6 +51,21 @@ FAILED_SCORE = 30.0      # an entry that could not be checked (status error or t
 MISMATCH_BONUS = 5.0
 
 
+def _take_chunk(take: Callable[[], "Entry | None"], size: int) -> list:
+    """Up to `size` entries from `take` (which returns None when there are no
+    more), each stamped with the time it is sent."""
+    chunk = []
+    while len(chunk) < size:
+        e = take()
+        if e is None:
+            break
+        chunk.append(e)
+    now = time.monotonic()
+    for e in chunk:
+        e.sent = now
+    return chunk
+
+
 def settings_key(options) -> str:
     """What the store keys work by besides content: the check settings and
     the bondcheck version (a new version may judge differently)."""
@@ -299,19 +314,11 @@ class _Processes:
     def fill(self, take: Callable[[], Entry | None]) -> None:
         for w in sorted(self.workers, key=lambda w: len(w.out)):
             while len(w.out) + self.chunk <= self.limit:
-                chunk = []
-                while len(chunk) < self.chunk:
-                    e = self.retry.popleft() if self.retry else take()
-                    if e is None:
-                        break
-                    chunk.append(e)
+                chunk = _take_chunk(lambda: self.retry.popleft() if self.retry else take(), self.chunk)
                 if not chunk:
                     return
-                now = time.monotonic()
                 if not w.out:
-                    w.last = now
-                for e in chunk:
-                    e.sent = now
+                    w.last = chunk[0].sent
                 w.out.extend(chunk)
                 w.tasks.put(chunk)
                 if len(chunk) < self.chunk:
@@ -450,17 +457,9 @@ class _Dask:
 
     def fill(self, take: Callable[[], Entry | None]) -> None:
         while len(self.futures) < self.limit:
-            chunk = []
-            while len(chunk) < self.chunk:
-                e = take()
-                if e is None:
-                    break
-                chunk.append(e)
+            chunk = _take_chunk(take, self.chunk)
             if not chunk:
                 return
-            now = time.monotonic()
-            for e in chunk:
-                e.sent = now
             fut = self.client.submit(_check_chunk, chunk, self.job, pure=False)
             self.futures[fut] = chunk
 

@@ -23,13 +23,12 @@ SYMPREC = 0.01  # angstrom
 @dataclass(slots=True)
 class Sites:
     """site[k] is the site index of atom k; per site: representative atom,
-    multiplicity (Wyckoff multiplicity in the conventional cell), Wyckoff
-    letter and the number of atoms of the site in the input cell."""
+    multiplicity (Wyckoff multiplicity in the conventional cell) and Wyckoff
+    letter."""
 
     site: np.ndarray
     representative: np.ndarray
     multiplicity: np.ndarray | None  # None when symmetry was not determined
-    count_in_cell: np.ndarray
     wyckoff: list[str | None]
     spacegroup: str
     spacegroup_number: int
@@ -102,7 +101,6 @@ def find_sites(crystal: Crystal, symprec: float = SYMPREC) -> Sites:
         site=site,
         representative=representative,
         multiplicity=mult,
-        count_in_cell=count,
         wyckoff=[wy[r] for r in reps],
         spacegroup=sg,
         spacegroup_number=num,
@@ -180,7 +178,6 @@ def group_sites(crystal: Crystal, contacts) -> Sites:
             break
         label, ngroup = refined, n_new
     # Labels count up in order of first appearance: they are the site numbers.
-    count = np.bincount(label, minlength=ngroup)
     first_pos = np.full(ngroup, npos, dtype=np.int64)
     np.minimum.at(first_pos, label, np.arange(npos))
     first_entry = np.full(npos, crystal.natoms, dtype=np.int64)
@@ -189,7 +186,6 @@ def group_sites(crystal: Crystal, contacts) -> Sites:
         site=label[pos_index],
         representative=first_entry[first_pos],
         multiplicity=None,
-        count_in_cell=count,
         wyckoff=[None] * ngroup,
         spacegroup="",
         spacegroup_number=0,
