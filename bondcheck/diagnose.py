@@ -637,16 +637,22 @@ def _cutoff_range(case: Case, verdict: str) -> list[F.Finding]:
     if not case.fragile_sites:
         return []
 
+    # The same bonds give the same count: the structure as given holds, and a
+    # scale that bonds what the previous one did repeats its answer.
+    answers = {case.contacts.bonded.tobytes(): True}
+
     def holds(f: float) -> bool:
         contacts = rescaled(case.crystal, case.contacts, case.criterion.scaled(f))
-        if np.array_equal(contacts.bonded, case.contacts.bonded):
-            return True  # the same bonds give the same count
-        try:
-            cc = count(case.crystal, contacts, case.sites, case.anions, case.valence)
-        except Exception:  # a variant that cannot be counted ends the range
-            return False
-        v = NOT_APPLICABLE if cc is None else (CONSISTENT if cc.closure.closes else MISMATCH)
-        return v == verdict
+        key = contacts.bonded.tobytes()
+        if key not in answers:
+            try:
+                cc = count(case.crystal, contacts, case.sites, case.anions, case.valence)
+            except Exception:  # a variant that cannot be counted ends the range
+                answers[key] = False
+            else:
+                v = NOT_APPLICABLE if cc is None else (CONSISTENT if cc.closure.closes else MISMATCH)
+                answers[key] = v == verdict
+        return answers[key]
 
     lo = hi = 1.0
     for f in sorted((x for x in SCALES if x < 1), reverse=True):

@@ -46,38 +46,41 @@ def periodic_components(n: int, bi, bj, shift) -> tuple[np.ndarray, dict[int, in
     shifted by shift[k] cells. Returns (component id per atom, {id: dim}).
     (ase's RDA class counts a finite cluster that crosses the cell boundary as
     two components, which is right for its histogram but not for naming motifs.)
+    The graphs are small: plain Python lists and tuples walk them faster than
+    numpy arrays would.
     """
-    adj: list[list[tuple[int, tuple]]] = [[] for _ in range(n)]
-    for a, b, s in zip(bi, bj, shift):
-        s = (int(s[0]), int(s[1]), int(s[2]))
-        adj[int(a)].append((int(b), s))
-        adj[int(b)].append((int(a), (-s[0], -s[1], -s[2])))
-    comp = -np.ones(n, dtype=np.int64)
-    offset = np.zeros((n, 3), dtype=np.int64)
+    adj: list[list[tuple[int, int, int, int]]] = [[] for _ in range(n)]
+    for a, b, (x, y, z) in zip(np.asarray(bi).tolist(), np.asarray(bj).tolist(), np.asarray(shift).tolist()):
+        adj[a].append((b, x, y, z))
+        adj[b].append((a, -x, -y, -z))
+    comp = [-1] * n
+    offset: list[tuple[int, int, int]] = [(0, 0, 0)] * n
     dims: dict[int, int] = {}
     cid = 0
     for start in range(n):
         if comp[start] >= 0:
             continue
         comp[start] = cid
-        offset[start] = 0
+        offset[start] = (0, 0, 0)
         stack = [start]
-        cycles = []
+        cycles = set()
         while stack:
             a = stack.pop()
-            for b, s in adj[a]:
-                o = offset[a] + s
+            ox, oy, oz = offset[a]
+            for b, x, y, z in adj[a]:
+                o = (ox + x, oy + y, oz + z)
                 if comp[b] < 0:
                     comp[b] = cid
                     offset[b] = o
                     stack.append(b)
                 else:
-                    d = o - offset[b]
-                    if d.any():
-                        cycles.append(d)
-        dims[cid] = int(np.linalg.matrix_rank(np.array(cycles))) if cycles else 0
+                    bx, by, bz = offset[b]
+                    d = (o[0] - bx, o[1] - by, o[2] - bz)
+                    if d != (0, 0, 0):
+                        cycles.add(d)
+        dims[cid] = int(np.linalg.matrix_rank(np.array(sorted(cycles)))) if cycles else 0
         cid += 1
-    return comp, dims
+    return np.array(comp, dtype=np.int64), dims
 
 
 def formula(numbers) -> str:
@@ -97,59 +100,69 @@ def anion_components(crystal, contacts, count) -> list[Component]:
     index = -np.ones(crystal.natoms, dtype=np.int64)
     index[anions] = np.arange(anions.size)
     b = contacts.bonded
-    bi, bj, sh = contacts.i[b][count.aa_bond], contacts.j[b][count.aa_bond], contacts.shift[b][count.aa_bond]
-    comp_of, dims = periodic_components(anions.size, index[bi], index[bj], sh)
+    aa = count.aa_bond
+    bi, bj = index[contacts.i[b][aa]], index[contacts.j[b][aa]]
+    comp_of, dims = periodic_components(anions.size, bi, bj, contacts.shift[b][aa])
     ncomp = len(dims)
-    deg = np.bincount(index[bi], minlength=anions.size) + np.bincount(index[bj], minlength=anions.size)
-    edges = np.bincount(comp_of[index[bi]], minlength=ncomp) if bi.size else np.zeros(ncomp, dtype=np.int64)
-    # Formula of every component at once: counts per (component, element).
+    deg = [0] * anions.size
+    edges = [0] * ncomp
+    comp_list = comp_of.tolist()
+    for i, j in zip(bi.tolist(), bj.tolist()):
+        deg[i] += 1
+        deg[j] += 1
+        edges[comp_list[i]] += 1
+    # Members and formula of every component (counts per element in
+    # atomic-number order).
     syms = elements.symbols()
-    z = crystal.numbers[anions]
-    key, counts = np.unique(comp_of * 128 + z, return_counts=True)
-    formulas = [""] * ncomp
-    for k, n in zip(key.tolist(), counts.tolist()):
-        formulas[k // 128] += f"{syms[k % 128]}{n if n > 1 else ''}"
-    order = np.argsort(comp_of, kind="stable")
-    bounds = np.searchsorted(comp_of[order], np.arange(ncomp + 1))
+    atom_list = anions.tolist()
+    z_list = crystal.numbers[anions].tolist()
+    members: list[list[int]] = [[] for _ in range(ncomp)]
+    per_z: list[dict[int, int]] = [{} for _ in range(ncomp)]
+    for k, cid in enumerate(comp_list):
+        members[cid].append(k)
+        zc = per_z[cid]
+        zc[z_list[k]] = zc.get(z_list[k], 0) + 1
     out = []
     for cid in range(ncomp):
-        members = order[bounds[cid]:bounds[cid + 1]]
-        d = deg[members]
-        comp = Component(anions[members].tolist(), int(dims[cid]), "", formulas[cid], int(edges[cid]), float(d.mean()))
+        m = members[cid]
+        d = [deg[k] for k in m]
+        text = "".join(f"{syms[z]}{n if n > 1 else ''}" for z, n in sorted(per_z[cid].items()))
+        comp = Component([atom_list[k] for k in m], dims[cid], "", text, edges[cid], sum(d) / len(d))
         comp.motif = _name(comp, d)
         out.append(comp)
     return out
 
 
-def _name(comp: Component, deg: np.ndarray) -> str:
+def _name(comp: Component, deg: list[int]) -> str:
     n = len(comp.atoms)
+    lo, hi = min(deg), max(deg)
     if comp.dimensionality == 0:
         if n == 1:
             return "isolated anion"
         if n == 2:
             return "dimer"
-        if np.all(deg == 2):
+        if lo == hi == 2:
             return f"{n}-membered ring"
-        if n == 3 and sorted(deg.tolist()) == [1, 1, 2]:
+        if n == 3 and sorted(deg) == [1, 1, 2]:
             return "trimer"
-        if n == 4 and np.all(deg == 3):
+        if n == 4 and lo == hi == 3:
             return "tetrahedron"
-        if np.all(deg <= 2):
+        if hi <= 2:
             return f"{n}-atom chain fragment"
-        if comp.edges == 3 * n - 6 and n >= 5 and np.all(deg >= 3):
+        if comp.edges == 3 * n - 6 and n >= 5 and lo >= 3:
             return f"{n}-vertex deltahedron"
         return f"{n}-atom cluster"
     if comp.dimensionality == 1:
-        return "chain" if np.all(deg == 2) else "ribbon or ladder"
+        return "chain" if lo == hi == 2 else "ribbon or ladder"
     if comp.dimensionality == 2:
-        if np.all(deg == 3):
+        if lo == hi == 3:
             return "three-connected layer"
-        if np.all(deg == 4):
+        if lo == hi == 4:
             return "four-connected layer (square net)"
         return "layer"
-    if np.all(deg == 4):
+    if lo == hi == 4:
         return "four-connected framework"
-    if np.all(deg == 3):
+    if lo == hi == 3:
         return "three-connected framework"
     return "framework"
 
