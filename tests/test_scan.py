@@ -169,26 +169,56 @@ def test_errors_say_why(mixed, mixed_scan):
 
 
 def test_rows_equal_single_checks(mixed, mixed_scan):
-    """A scanned entry gives what `bondcheck.check` gives for the same structure."""
+    """A scanned entry gives what `bondcheck.check` gives for the same
+    structure with the scan's default settings (sites grouped by environment)."""
     import ase.db
 
     root, exp = mixed
     got = _by_entry(mixed_scan[1])
-    keys = ("formula", "spacegroup", "verdict", "causes", "vec_anion", "aa_observed", "residual", "sites")
+    keys = ("formula", "spacegroup", "verdict", "causes", "vec_anion", "aa_observed", "residual", "sites", "findings")
+    fast = bondcheck.Options(symmetry=False)
     pairs = []
     for entry, st in exp.items():
         if st == "ok" and "::" not in entry:
-            pairs.append((entry, bondcheck.check(entry)))
-    pairs.append((f"{root / 'bundle.zip'}::set-a/{NI3S2}", bondcheck.check(MINERALS / NI3S2)))
-    pairs.append((f"{root / 'drop/bundle.tar.gz'}::{COASS_2}", bondcheck.check(MINERALS / COASS_2)))
-    pairs.append((f"{root / 'drop/bundle.tar.gz'}::Li2O2.json", bondcheck.check(PMG / "Li2O2.json")))
+            pairs.append((entry, bondcheck.check(entry, options=fast)))
+    pairs.append((f"{root / 'bundle.zip'}::set-a/{NI3S2}", bondcheck.check(MINERALS / NI3S2, options=fast)))
+    pairs.append((f"{root / 'drop/bundle.tar.gz'}::{COASS_2}", bondcheck.check(MINERALS / COASS_2, options=fast)))
+    pairs.append((f"{root / 'drop/bundle.tar.gz'}::Li2O2.json", bondcheck.check(PMG / "Li2O2.json", options=fast)))
     with ase.db.connect(root / "rows.db") as db:
-        pairs.append((f"{root / 'rows.db'}::id=3", bondcheck.check(db.get(id=3).toatoms())))
+        pairs.append((f"{root / 'rows.db'}::id=3", bondcheck.check(db.get(id=3).toatoms(), options=fast)))
     assert len(pairs) == 10
     for entry, ref in pairs:
         d = ref.to_dict()
+        assert got[entry]["spacegroup"] == ""
+        assert all(s["wyckoff"] is None for s in got[entry]["sites"])
         for k in keys:
             assert got[entry][k] == d[k], (entry, k)
+
+
+def test_symmetry_on_request(tmp_path):
+    """`scan --symmetry` gives the rows `bondcheck check` gives, with space
+    groups and Wyckoff letters: zincblende SiC is F-43m with Si and C on 4a
+    and 4c (COD 1010995, as bundled with ase), and the verdict is the one of
+    the default scan."""
+    from bondcheck.cli import main
+
+    for f in (SIC, NI3S2, MOS2):
+        shutil.copy(MINERALS / f, tmp_path / f)
+    rows = {}
+    for name, flags in (("symmetry", ["--symmetry"]), ("default", [])):
+        out = tmp_path / f"{name}.jsonl"
+        code = main(["scan", str(tmp_path), *flags, "--out", str(out), "--no-store", "--jobs", "1", "--no-progress"])
+        assert code in (0, 1)
+        rows[name] = {Path(r["path"]).name: r for r in read_rows(str(out))}
+    sym, plain = rows["symmetry"], rows["default"]
+    assert sym[SIC]["spacegroup"] == "F-43m (216)"
+    assert sorted(s["wyckoff"] for s in sym[SIC]["sites"]) == ["a", "c"]
+    for f in (SIC, NI3S2, MOS2):
+        d = bondcheck.check(MINERALS / f).to_dict()
+        for k in ("spacegroup", "verdict", "causes", "residual", "sites", "findings"):
+            assert sym[f][k] == d[k], (f, k)
+        assert plain[f]["verdict"] == sym[f]["verdict"]
+        assert plain[f]["residual"] == sym[f]["residual"]
 
 
 def test_known_chemistry_through_every_container(mixed, mixed_scan):
