@@ -11,7 +11,9 @@ leak between them) and reports files/s and the peak resident memory of the
 scan's processes (main, server and workers, sampled with psutil every 0.1 s).
 
 Measurements
-  loop      read() + check_crystal() in a plain loop: the per-structure cost
+  loop      read() + check_crystal() in a plain loop with the scan's default
+            settings (sites grouped by environment): the per-structure cost
+  loop+symmetry   the same with Options(symmetry=True) (scan --symmetry)
   inline    the scan machinery in one process (enumerate, read bytes, hash,
             check, write rows): inline - loop is the scan overhead per entry
   jobs=1    one worker process; jobs=2: two worker processes
@@ -123,12 +125,12 @@ def naive_pymatgen(files: list[str]) -> tuple[int, int]:
     return done, errors
 
 
-def loop(files: list[str]) -> tuple[int, int]:
+def loop(files: list[str], symmetry: bool = False) -> tuple[int, int]:
     from bondcheck.api import Options, check_crystal
     from bondcheck.read import read
     from bondcheck.record import StructureError
 
-    opts = Options()
+    opts = Options(symmetry=symmetry)
     done = errors = 0
     for f in files:
         try:
@@ -153,8 +155,8 @@ def one(name: str, files: list[str], workdir: str) -> dict:
     cpu0 = time.process_time()
     t0 = time.perf_counter()
     extra: dict = {}
-    if name == "loop":
-        done, errors = loop(files)
+    if name.startswith("loop"):
+        done, errors = loop(files, symmetry=name == "loop+symmetry")
     elif name == "pymatgen":
         done, errors = naive_pymatgen(files)
     else:
@@ -300,7 +302,7 @@ def main() -> int:
           f"Python {platform.python_version()}")
     with tempfile.TemporaryDirectory(prefix="bench-scan-") as wd:
         Path(wd, "files.txt").write_text("\n".join(files) + "\n")
-        names = ["loop", "inline", "jobs=1", "jobs=2", "store", "rerun"]
+        names = ["loop", "loop+symmetry", "inline", "jobs=1", "jobs=2", "store", "rerun"]
         if not args.skip_pymatgen:
             names.append("pymatgen")
         if args.only_flat:
