@@ -198,20 +198,20 @@ def triangle_edges(n_atoms: int, bi, bj, shift) -> np.ndarray:
     """Bonds that lie in at least one three-membered ring of the periodic
     bond graph (the edges of deltahedra)."""
     # Neighbour sets with cell shifts; a bond a -> (b, s) lies in a triangle
-    # when a and the image of b at s share a neighbour image.
+    # when a neighbour image (c, t) of a is also a neighbour of the image of
+    # b at s, i.e. (c, t - s) is a neighbour of b.
+    bl, jl, sl = np.asarray(bi).tolist(), np.asarray(bj).tolist(), np.asarray(shift).tolist()
     nbr: dict[int, set] = {}
-    for k, (a, b, s) in enumerate(zip(bi, bj, shift)):
-        s = tuple(int(x) for x in s)
-        nbr.setdefault(int(a), set()).add((int(b), s, k))
-        nbr.setdefault(int(b), set()).add((int(a), tuple(-x for x in s), k))
-    in_tri = np.zeros(len(bi), dtype=bool)
-    for k, (a, b, s) in enumerate(zip(bi, bj, shift)):
-        a, b, s = int(a), int(b), tuple(int(x) for x in s)
-        na = {(c, t) for c, t, _ in nbr.get(a, ())}
-        # neighbours of b, moved to b's image at s
-        nb = {(c, tuple(x + y for x, y in zip(t, s))) for c, t, _ in nbr.get(b, ())}
-        if na & nb:
-            in_tri[k] = True
+    for a, b, (x, y, z) in zip(bl, jl, sl):
+        nbr.setdefault(a, set()).add((b, x, y, z))
+        nbr.setdefault(b, set()).add((a, -x, -y, -z))
+    in_tri = np.zeros(len(bl), dtype=bool)
+    for k, (a, b, (x, y, z)) in enumerate(zip(bl, jl, sl)):
+        nb = nbr[b]
+        for c, tx, ty, tz in nbr[a]:
+            if (c, tx - x, ty - y, tz - z) in nb:
+                in_tri[k] = True
+                break
     return in_tri
 
 
