@@ -184,22 +184,20 @@ def _explanations(case: Case) -> list[F.Finding]:
     cl = c.closure
     lone, dstates, lanth = [], [], []
     for g, k in cl.keep.items():
-        site, z = c.groups[g]
-        sym = syms[z]
-        atoms = c.group_of == g
-        w = float(np.sum(crystal.occupancy[atoms]))
-        ccb = float(np.mean(c.aa_bonds[atoms]))
-        nonbond = k - ccb
+        sym = syms[c.groups[g][1]]
         blk = elements.block(sym)
-        v = case.valence.get(sym, elements.valence(sym))
-        label = _label(crystal, atoms)
-        if blk == "p" and nonbond > 1e-6:
-            lone.append((label, sym, w * nonbond, int(np.flatnonzero(atoms)[0])))
+        if blk == "p":
+            atoms = c.group_of == g
+            nonbond = k - float(np.mean(c.aa_bonds[atoms]))  # electrons kept beyond cation-cation bonds
+            if nonbond > 1e-6:
+                w = float(np.sum(crystal.occupancy[atoms]))
+                lone.append((_label(crystal, atoms), sym, w * nonbond, int(np.flatnonzero(atoms)[0])))
         elif blk == "d" or sym in elements.DLIKE_ACTINIDES:
             if k > 1e-6:
-                dstates.append((label, sym, v - k, k))
+                v = case.valence.get(sym, elements.valence(sym))
+                dstates.append((_label(crystal, c.group_of == g), sym, v - k, k))
         elif sym in elements.DIVALENT_LANTHANIDES and k > 1e-6:
-            lanth.append(label)
+            lanth.append(_label(crystal, c.group_of == g))
     if lone:
         n = sum(x[2] for x in lone)
         who = ", ".join(f"{lab} ({s})" for lab, s, _, _ in lone)
