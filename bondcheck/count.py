@@ -453,8 +453,8 @@ class _Context:
         from_planar = min(pi, pi_planar)
         return Closure(True, keep, pi, pi - from_planar, from_planar, mixed, cost)
 
-    def _group_options(self, role, per, saturated):
-        """Per cation group: (group index, weight, {kept electrons per atom: cost})."""
+    def _group_options(self, role, per, saturated) -> tuple:
+        """Per cation group: (group index, weight, ((kept electrons per atom, cost), ...))."""
         out = []
         go = self.group_of
         ng = len(self.groups)
@@ -468,26 +468,20 @@ class _Context:
         for g, (site, zz) in enumerate(self.groups):
             if has_anion[g]:
                 continue
-            sym, block, valence, keep = _element_facts(zz)
+            sym, block, _valence, keep = _element_facts(zz)
             w = float(self.group_weight[g])
             # cation-cation bonds per atom
             ccb = float(ccb_all[g]) if ccb_all is not None else float(np.mean(per[go == g]))
-            if sym in self.valence_override:
-                v = self.valence_override[sym]
-                opts = {0: 0}
-            else:
-                v = valence
-                opts = keep
-            if block == "p" or sym in self.valence_override:
+            overridden = sym in self.valence_override
+            opts = {0: 0} if overridden else keep
+            if block == "p" or overridden:
                 if all_saturated[g]:
                     opts = {0: 0}
-                opts = {ccb + k: c for k, c in opts.items()}
+                items = tuple((ccb + k, c) for k, c in opts.items())
             else:
-                opts = {k: c for k, c in opts.items() if k >= ccb - 1e-6}
-                if not opts:
-                    opts = {}
-            out.append((g, w, opts, v))
-        return out
+                items = tuple((k, c) for k, c in opts.items() if k >= ccb - 1e-6)
+            out.append((g, w, items))
+        return tuple(out)
 
 
 _FACTS: dict[int, tuple] = {}
@@ -503,10 +497,16 @@ def _element_facts(z: int) -> tuple:
     return f
 
 
-def _local_totals(w: float, opts: dict) -> dict:
-    """Kept electrons of one group: total -> (cost, electrons per atom, mixed)."""
+@lru_cache(maxsize=4096)
+def _local_totals(w: float, options: tuple, kind: type) -> dict:
+    """Kept electrons of one group of weight w with options ((kept electrons
+    per atom, cost), ...): total -> (cost, electrons per atom, mixed).
+
+    Cached; the dict is shared and must not be changed. `kind` is the type of
+    the kept electrons (int or float), so that option sets that compare equal
+    but hand back different types are kept apart."""
     local: dict[float, tuple[float, float, bool]] = {}
-    items = sorted(opts.items())
+    items = sorted(options)
     for k, c in items:
         # A small convex term spreads kept electrons evenly over the sites
         # of one element (V3+ on two sites rather than V2+ and V4+).
@@ -537,7 +537,7 @@ def _reachable(options, lo: float = -math.inf, hi: float = math.inf):
     cache = getattr(_LOCAL, "reached", None)
     if cache is None:
         cache = _LOCAL.reached = OrderedDict()
-    key = (tuple((g, w, tuple(opts.items())) for g, w, opts, _v in options), lo, hi)
+    key = (options, lo, hi)
     hit = cache.get(key)
     if hit is not None:
         cache.move_to_end(key)
@@ -552,7 +552,8 @@ def _reachable(options, lo: float = -math.inf, hi: float = math.inf):
 
 def _search(options, lo: float = -math.inf, hi: float = math.inf):
     """Totals of kept electrons reachable by choosing one option per group
-    (uniform over the group) or mixing two options within a group.
+    (uniform over the group) or mixing two options within a group; options
+    as from `_Context._group_options`.
 
     Returns (totals, top): totals maps total -> (cost, path), path a linked
     list (group, electrons per atom, mixed, previous path) that `_match`
@@ -565,12 +566,15 @@ def _search(options, lo: float = -math.inf, hi: float = math.inf):
     leaves more than MAX_STATES totals; the window is used only where that
     cannot happen."""
     locs = []
-    for g, w, opts, _v in options:
+    for g, w, opts in options:
         if not opts:
-            locs = None
-            break
-        locs.append((g, _local_totals(w, opts)))
-    windowed = locs is not None and (lo > -math.inf or hi < math.inf) and _few_totals(locs)
+            # A group without options leaves no totals, unless the enumeration
+            # stops (MAX_STATES) before it.
+            if _few_totals(locs):
+                return {}, 0.0
+            return _enumerate(options)
+        locs.append((g, _local_totals(w, opts, type(opts[0][0]))))
+    windowed = (lo > -math.inf or hi < math.inf) and _few_totals(locs)
     if not windowed:
         return _enumerate(options)
     # Smallest and largest completion after each group; a rounding slack of
@@ -589,7 +593,9 @@ def _search(options, lo: float = -math.inf, hi: float = math.inf):
     for L, (g, local) in enumerate(locs):
         slack = (n - L) * 1e-4 + 1e-6
         a, b = lo - slack - rest_hi[L], hi + slack - rest_lo[L]
-        states = _combine(states, list(local.items()), g, a, b)
+        states = _combine(states, local.items(), g, a, b)
+        if not states:
+            break
     return states, top
 
 
@@ -597,13 +603,14 @@ def _combine(states, items, g, a=-math.inf, b=math.inf):
     """Add one group's choices to every total in [a, b], keeping the cheapest
     way to each new total and a back-pointer to how it was reached."""
     new: dict[float, tuple[float, tuple | None]] = {}
+    get = new.get
     for t0, (c0, p0) in states.items():
         if t0 < a or t0 > b:
             continue
         for t1, (c1, k, mixed) in items:
             t = round(t0 + t1, 4)
             cost = c0 + c1
-            old = new.get(t)
+            old = get(t)
             if old is None or old[0] > cost:
                 new[t] = (cost, (g, k, mixed, p0))
     return new
@@ -628,10 +635,10 @@ def _few_totals(locs) -> bool:
 def _enumerate(options):
     """Every reachable total (the window-free case of `_reachable`)."""
     states: dict[float, tuple[float, tuple | None]] = {0.0: (0.0, None)}
-    for g, w, opts, _v in options:
+    for g, w, opts in options:
         if not opts:
             return {}, 0.0
-        states = _combine(states, list(_local_totals(w, opts).items()), g)
+        states = _combine(states, _local_totals(w, opts, type(opts[0][0])).items(), g)
         if len(states) > MAX_STATES:
             break
     return states, max(states, default=0.0)
