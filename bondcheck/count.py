@@ -189,43 +189,49 @@ def count(
     return c
 
 
+# Electrons that complete the shell, by atomic number.
+_TARGET_BY_Z = np.full(128, 8.0)
+_TARGET_BY_Z[[1, 2]] = 2.0
+_TARGET_BY_Z.setflags(write=False)
+
+
 def _static(crystal: Crystal, sites: Sites, valence: dict[str, int]) -> tuple:
     """The quantities of `_Context` that depend on the atoms and sites alone,
     remembered for the last structure (per thread): the checks of one
     structure count it several times with other contacts."""
     z, occ, site = crystal.numbers, crystal.occupancy, sites.site
-    vkey = tuple(sorted(valence.items()))
+    # The arrays' bytes (with their types) and the valence overrides.
+    key = (
+        z.dtype.str, z.tobytes(), occ.dtype.str, occ.tobytes(), site.dtype.str, site.tobytes(),
+        tuple(sorted(valence.items())),
+    )
     last = getattr(_LOCAL, "static", None)
-    if (
-        last is not None
-        and last[3] == vkey
-        and np.array_equal(last[0], z)
-        and np.array_equal(last[1], occ)
-        and np.array_equal(last[2], site)
-    ):
-        return last[4]
+    if last is not None and last[0] == key:
+        return last[1]
     syms = elements.symbols()
-    sym_of_atom = [syms[k] for k in z]
+    sym_of_atom = [syms[k] for k in z.tolist()]
     present = sorted(set(sym_of_atom))
-    val = elements.valence_by_z().copy()
-    for el, n in valence.items():
-        val[elements.numbers()[el]] = n
-    val_atom = val[z]
-    electrons = float(np.sum(occ * val_atom))
-    ep_atom = elements.electropositive_by_z()[z]
+    val = elements.valence_by_z()
+    if valence:
+        val = val.copy()
+        for el, n in valence.items():
+            val[elements.numbers()[el]] = n
+    electrons = float((occ * val[z]).sum())
     capable_atom = elements.capable_by_z()[z]
+    # Atoms that are not electropositive (the only cations that may bond to each other).
+    not_ep_atom = ~elements.electropositive_by_z()[z]
     # Groups: one per (site, element).
-    key = site.astype(np.int64) * 128 + z
-    uniq, group_of = np.unique(key, return_inverse=True)
+    gkey = site.astype(np.int64) * 128 + z
+    uniq, group_of = np.unique(gkey, return_inverse=True)
     group_of = group_of.reshape(-1)
-    groups = [(int(k // 128), int(k % 128)) for k in uniq]
-    group_weight = np.bincount(group_of, weights=occ, minlength=len(uniq))
+    groups = [(k // 128, k % 128) for k in uniq.tolist()]
+    group_weight = np.bincount(group_of, weights=occ, minlength=len(uniq)).tolist()
     group_size = np.bincount(group_of, minlength=len(uniq))
-    targets = np.where((z == 1) | (z == 2), 2.0, 8.0)
-    for arr in (val_atom, ep_atom, capable_atom, group_of, group_weight, group_size, targets):
+    occ_target = occ * _TARGET_BY_Z[z]
+    for arr in (capable_atom, not_ep_atom, group_of, group_size, occ_target):
         arr.setflags(write=False)
-    out = (sym_of_atom, present, val_atom, electrons, ep_atom, capable_atom, group_of, groups, group_weight, group_size, targets)
-    _LOCAL.static = (z.copy(), occ.copy(), site.copy(), vkey, out)
+    out = (sym_of_atom, present, electrons, capable_atom, not_ep_atom, group_of, groups, group_weight, group_size, occ_target)
+    _LOCAL.static = (key, out)
     return out
 
 
@@ -235,34 +241,33 @@ class _Context:
     def __init__(self, crystal: Crystal, contacts: Contacts, sites: Sites, valence: dict[str, int]):
         self.crystal = crystal
         self.contacts = contacts
-        self.sites = sites
         self.valence_override = valence
         self.occ = crystal.occupancy
         (
-            self.sym_of_atom, self.present, self.val_atom, self.electrons, self.ep_atom, self.capable_atom,
-            self.group_of, self.groups, self.group_weight, self.group_size, self.targets,
+            self.sym_of_atom, self.present, self.electrons, self.capable_atom, self.not_ep_atom,
+            self.group_of, self.groups, self.group_weight, self.group_size, self.occ_target,
         ) = _static(crystal, sites, valence)
         c = contacts
         self.bonded = c.bonded
-        bi, bj = c.i[c.bonded], c.j[c.bonded]
-        self.bi, self.bj = bi, bj
+        self.bi, self.bj = c.i[c.bonded], c.j[c.bonded]
         self.bw = c.weight[c.bonded]
         self.bd = c.d[c.bonded]
-        self.short = c.ratio[c.bonded] <= SATURATED_RATIO
-        self.no_ep = ~self.ep_atom[bi] & ~self.ep_atom[bj]
-        z = crystal.numbers
-        self.hetero = z[bi] != z[bj]
 
     def polyanion_split(self, start: list[str]) -> tuple[list[str], str]:
         """Grow the anion set by elements bonded to anions with a small
         electronegativity difference (< 0.5): a Ga-Ge framework, As-S pairs."""
-        en = elements.pauling().tolist()
+        en = elements.pauling()
         nums = elements.numbers()
         syms = elements.symbols()
-        capable = elements.capable_by_z().tolist()
+        capable = elements.capable_by_z()
         anions = list(start)
         z = self.crystal.numbers
-        pairs = list(zip(z[self.bi].tolist(), z[self.bj].tolist()))
+        zi, zj = z[self.bi], z[self.bj]
+        # Only bonds between different elements, close in electronegativity,
+        # one of them anion-capable, can bring in an anion; they are met in
+        # bond order.
+        near = (zi != zj) & (np.abs(en[zi] - en[zj]) < 0.5) & (capable[zi] | capable[zj])
+        pairs = list(zip(zi[near].tolist(), zj[near].tolist()))
         changed = True
         while changed:
             changed = False
@@ -276,12 +281,9 @@ class _Context:
                             changed = True
         # Anion-capable elements with no bond to any anion are isolated anions
         # (Cl- beside water molecules), not cations.
-        bonded_to_anion = set()
-        for a, b in pairs:
-            if a in an_z:
-                bonded_to_anion.add(b)
-            if b in an_z:
-                bonded_to_anion.add(a)
+        is_anion = np.zeros(128, dtype=bool)
+        is_anion[list(an_z)] = True
+        bonded_to_anion = set(zj[is_anion[zi]].tolist()) | set(zi[is_anion[zj]].tolist())
         for sy in self.present:
             zz = nums[sy]
             if sy not in anions and elements.can_be_anion(sy) and zz not in bonded_to_anion:
@@ -302,26 +304,32 @@ class _Context:
             an_z[nums[a]] = True
         role = an_z[z]
         occ = self.occ
-        n = cr.natoms
+        n = len(z)
         bi, bj, bw = self.bi, self.bj, self.bw
         rbi, rbj = role[bi], role[bj]
         aa = rbi & rbj
-        cc_candidate = ~rbi & ~rbj & self.no_ep
-        # Mean cation-anion bond length per atom, for the bridging test.
         ca = rbi != rbj
-        ica, jca, dca = bi[ca], bj[ca], self.bd[ca]
-        dsum = np.bincount(ica, weights=dca, minlength=n) + np.bincount(jca, weights=dca, minlength=n)
-        dcnt = np.bincount(ica, minlength=n) + np.bincount(jca, minlength=n)
-        with np.errstate(invalid="ignore", divide="ignore"):
+        # Cation-cation bonds: between non-electropositive cations, and only
+        # as long as the bridging test below allows.
+        may_bond = ~role & self.not_ep_atom
+        cc = may_bond[bi] & may_bond[bj]
+        cc_any = bool(cc.any())
+        lonely_possible = bool((self.capable_atom & ~role).any())
+        if cc_any or lonely_possible:
+            ica, jca = bi[ca], bj[ca]
+            dcnt = np.bincount(ica, minlength=n) + np.bincount(jca, minlength=n)
+        if cc_any:
+            # Mean cation-anion bond length per atom, for the bridging test.
+            dca = self.bd[ca]
+            dsum = np.bincount(ica, weights=dca, minlength=n) + np.bincount(jca, weights=dca, minlength=n)
             mean_ca = np.where(dcnt > 0, dsum / np.maximum(dcnt, 1), np.inf)
-        limit = CC_BRIDGE * np.minimum(mean_ca[bi], mean_ca[bj])
-        cc = cc_candidate & (self.bd <= limit)
+            cc &= self.bd <= CC_BRIDGE * np.minimum(mean_ca[bi], mean_ca[bj])
+            cc_any = bool(cc.any())
 
-        n_anion = float(np.sum(occ[role]))
-        targets = self.targets
-        shell = float(np.sum(occ[role] * targets[role]))
-        aa_ends = 2.0 * float(np.sum(bw[aa]))
-        cc_e = 2.0 * float(np.sum(bw[cc]))
+        n_anion = float(occ[role].sum())
+        shell = float(self.occ_target[role].sum())
+        aa_ends = 2.0 * float(bw[aa].sum())
+        cc_e = 2.0 * float(bw[cc].sum())
         vec = self.electrons / n_anion
         mean_target = shell / n_anion
         aa_obs = aa_ends / n_anion
@@ -337,17 +345,18 @@ class _Context:
         # Validity: a p-block cation bonded to another cation of a different
         # element should rather be an anion.
         valid, note = True, ""
-        hetero = cc & self.hetero
-        if hetero.any():
+        if cc_any:
             en = elements.pauling()
-            for a, b in zip(z[bi[hetero]], z[bj[hetero]]):
+            for a, b in zip(z[ic].tolist(), z[jc].tolist()):
+                if a == b:
+                    continue
                 more = a if en[a] > en[b] else b
                 sm = elements.symbols()[more]
                 if elements.can_be_anion(sm):
                     valid = False
                     note = f"{sm} is left as a cation bonded to {elements.symbols()[b if more == a else a]}"
                     break
-        if valid:
+        if valid and lonely_possible:
             # An element that could be an anion, made a cation without a
             # single bond to an anion (Cl in a hydrate split on O alone).
             lonely = ~role & (dcnt == 0) & self.capable_atom
@@ -355,8 +364,7 @@ class _Context:
                 valid = False
                 note = f"{self.sym_of_atom[int(np.flatnonzero(lonely)[0])]} would be a cation without anion neighbours"
 
-        saturated = self._saturated(role, ca)
-        closure = self._close(role, per, cc, aa, residual * n_anion + cc_e, n_anion, saturated)
+        closure = self._close(role, per, aa, ca, cc_any, residual * n_anion + cc_e, n_anion)
         cations = [s for s in self.present if s not in anions]
         return Count(
             anions=list(anions),
@@ -397,24 +405,24 @@ class _Context:
                 v = np.where((bi[m] == k)[:, None], vec[m], -vec[m])
                 if v.shape[0] != 3:
                     continue
-                normal = np.cross(v[0] - v[1], v[0] - v[2])
+                normal = _cross(v[0] - v[1], v[0] - v[2])
                 nn = np.linalg.norm(normal)
                 if nn > 1e-9 and abs(np.dot(v[0], normal / nn)) < 0.15:
                     planar_atom[k] = True
-        planar = float(np.sum(self.occ[planar_atom]))
+        planar = float(self.occ[planar_atom].sum())
         rad = elements.radii()
         z = self.crystal.numbers
         order = 10.0 ** ((rad[z[bi]] + rad[z[bj]] - bd) / PAULING_K)
         extra = np.where(order >= TRIPLE_ORDER, 2.0, np.where(order >= DOUBLE_ORDER, 1.0, 0.0))
         usable = aa & ~planar_atom[bi] & ~planar_atom[bj]
-        short = 2.0 * float(np.sum((bw * extra)[usable]))
+        short = 2.0 * float((bw * extra)[usable].sum())
         return short, planar
 
     def _saturated(self, role, ca) -> np.ndarray:
         """Cations with four or more short, near-equal bonds to anions (a
         tetrahedral framework atom): no room for a lone pair."""
         n = self.crystal.natoms
-        short = ca & self.short
+        short = ca & (self.contacts.ratio[self.bonded] <= SATURATED_RATIO)
         ends = np.concatenate([self.bi[short], self.bj[short]])
         dd = np.concatenate([self.bd[short], self.bd[short]])
         cnt = np.bincount(ends, minlength=n)
@@ -424,11 +432,11 @@ class _Context:
         np.maximum.at(hi, ends, dd)
         return ~role & (cnt >= 4) & (hi <= lo * 1.05)
 
-    def _close(self, role, per, cc, aa, keep_needed: float, n_anion: float, saturated) -> Closure:
+    def _close(self, role, per, aa, ca, cc_any: bool, keep_needed: float, n_anion: float) -> Closure:
         """Find kept electrons per cation group (lone pairs, d electrons,
         cation-cation bonds) and pi electrons that make the count close."""
         tol = max(TOL * n_anion, 0.02)
-        options = self._group_options(role, per, saturated)
+        options = self._group_options(role, per, ca, cc_any)
         totals, top = _reachable(options, keep_needed - tol, keep_needed + tol)
         pi_short = pi_planar = 0.0
         best = _match(totals, keep_needed, tol)
@@ -453,28 +461,34 @@ class _Context:
         from_planar = min(pi, pi_planar)
         return Closure(True, keep, pi, pi - from_planar, from_planar, mixed, cost)
 
-    def _group_options(self, role, per, saturated) -> tuple:
+    def _group_options(self, role, per, ca, cc_any: bool) -> tuple:
         """Per cation group: (group index, weight, ((kept electrons per atom, cost), ...))."""
         out = []
         go = self.group_of
         ng = len(self.groups)
-        has_anion = np.bincount(go[role], minlength=ng) > 0
-        all_saturated = np.bincount(go[~saturated], minlength=ng) == 0
-        if np.array_equal(per, np.rint(per)):
+        has_anion = (np.bincount(go[role], minlength=ng) > 0).tolist()
+        ccb_all = None
+        if cc_any and np.array_equal(per, np.rint(per)):
             # Whole bond counts: any order of summation gives np.mean's value.
             ccb_all = np.bincount(go, weights=per, minlength=ng) / self.group_size
-        else:
-            ccb_all = None
-        for g, (site, zz) in enumerate(self.groups):
+        all_saturated = None
+        for g, (_site, zz) in enumerate(self.groups):
             if has_anion[g]:
                 continue
             sym, block, _valence, keep = _element_facts(zz)
-            w = float(self.group_weight[g])
-            # cation-cation bonds per atom
-            ccb = float(ccb_all[g]) if ccb_all is not None else float(np.mean(per[go == g]))
+            w = self.group_weight[g]
+            # cation-cation bonds per atom (none without a cation-cation bond)
+            if not cc_any:
+                ccb = 0.0
+            elif ccb_all is not None:
+                ccb = float(ccb_all[g])
+            else:
+                ccb = float(np.mean(per[go == g]))
             overridden = sym in self.valence_override
             opts = {0: 0} if overridden else keep
             if block == "p" or overridden:
+                if all_saturated is None:
+                    all_saturated = np.bincount(go[~self._saturated(role, ca)], minlength=ng) == 0
                 if all_saturated[g]:
                     opts = {0: 0}
                 items = tuple((ccb + k, c) for k, c in opts.items())
@@ -482,6 +496,14 @@ class _Context:
                 items = tuple((k, c) for k, c in opts.items() if k >= ccb - 1e-6)
             out.append((g, w, items))
         return tuple(out)
+
+
+def _cross(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """np.cross of two 3-vectors (the same products and differences), without
+    its overhead."""
+    a0, a1, a2 = a.tolist()
+    b0, b1, b2 = b.tolist()
+    return np.array([a1 * b2 - a2 * b1, a2 * b0 - a0 * b2, a0 * b1 - a1 * b0])
 
 
 _FACTS: dict[int, tuple] = {}
