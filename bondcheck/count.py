@@ -102,7 +102,7 @@ class Count:
 def candidate_partitions(crystal: Crystal) -> list[tuple[list[str], str]]:
     """Anion sets to try, in order: the most electronegative anion-capable
     element, then the next ones added in order of electronegativity."""
-    zs = tuple(np.unique(crystal.numbers).tolist())
+    zs = tuple(sorted(set(crystal.numbers.tolist())))
     return [(list(an), why) for an, why in _candidates(zs)]
 
 
@@ -425,12 +425,14 @@ class _Context:
         short = ca & (self.contacts.ratio[self.bonded] <= SATURATED_RATIO)
         ends = np.concatenate([self.bi[short], self.bj[short]])
         dd = np.concatenate([self.bd[short], self.bd[short]])
-        cnt = np.bincount(ends, minlength=n)
-        lo = np.full(n, np.inf)
-        hi = np.zeros(n)
-        np.minimum.at(lo, ends, dd)
-        np.maximum.at(hi, ends, dd)
-        return ~role & (cnt >= 4) & (hi <= lo * 1.05)
+        out = ~role & (np.bincount(ends, minlength=n) >= 4)
+        if out.any():
+            lo = np.full(n, np.inf)
+            hi = np.zeros(n)
+            np.minimum.at(lo, ends, dd)
+            np.maximum.at(hi, ends, dd)
+            out &= hi <= lo * 1.05
+        return out
 
     def _close(self, role, per, aa, ca, cc_any: bool, keep_needed: float, n_anion: float) -> Closure:
         """Find kept electrons per cation group (lone pairs, d electrons,
@@ -475,7 +477,7 @@ class _Context:
         for g, (_site, zz) in enumerate(self.groups):
             if has_anion[g]:
                 continue
-            sym, block, _valence, keep = _element_facts(zz)
+            sym, block = _element_facts(zz)[:2]
             w = self.group_weight[g]
             # cation-cation bonds per atom (none without a cation-cation bond)
             if not cc_any:
@@ -485,17 +487,29 @@ class _Context:
             else:
                 ccb = float(np.mean(per[go == g]))
             overridden = sym in self.valence_override
-            opts = {0: 0} if overridden else keep
-            if block == "p" or overridden:
+            saturated = False
+            if overridden or block == "p":
                 if all_saturated is None:
                     all_saturated = np.bincount(go[~self._saturated(role, ca)], minlength=ng) == 0
-                if all_saturated[g]:
-                    opts = {0: 0}
-                items = tuple((ccb + k, c) for k, c in opts.items())
-            else:
-                items = tuple((k, c) for k, c in opts.items() if k >= ccb - 1e-6)
-            out.append((g, w, items))
+                saturated = bool(all_saturated[g])
+            out.append((g, w, _kept_options(zz, ccb, overridden, saturated)))
         return tuple(out)
+
+
+@lru_cache(maxsize=4096)
+def _kept_options(z: int, ccb: float, overridden: bool, saturated: bool) -> tuple:
+    """((kept electrons per atom, cost), ...) for a cation group of element z
+    with ccb cation-cation bonds per atom. A p-block cation (or one whose
+    valence the user set) keeps its lone pair on top of its cation-cation
+    bonds, none when all its atoms are saturated; other cations keep at least
+    the electrons of their cation-cation bonds."""
+    _sym, block, _valence, keep = _element_facts(z)
+    opts = {0: 0} if overridden else keep
+    if block == "p" or overridden:
+        if saturated:
+            opts = {0: 0}
+        return tuple((ccb + k, c) for k, c in opts.items())
+    return tuple((k, c) for k, c in opts.items() if k >= ccb - 1e-6)
 
 
 def _cross(a: np.ndarray, b: np.ndarray) -> np.ndarray:
