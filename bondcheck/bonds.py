@@ -112,8 +112,11 @@ def _check_cell_list(cell: np.ndarray, cutoff: float) -> None:
 
 
 def _neighbour_pairs(crystal: Crystal, cutoff: float):
-    """Unordered pairs within cutoff: vesin, one thread (the scan parallelises
-    over structures), one NeighborList object per thread reused across calls."""
+    """Unordered pairs within cutoff as vesin returns them: (pairs (m, 2),
+    shifts (m, 3), distances (m,)), views into the neighbour list's buffers,
+    valid until its next search. vesin runs on one thread (the scan
+    parallelises over structures), with one NeighborList object per thread
+    reused across calls."""
     _check_cell_list(crystal.cell, cutoff)
     nl = getattr(_LOCAL, "nl", None)
     if nl is None:
@@ -123,67 +126,77 @@ def _neighbour_pairs(crystal: Crystal, cutoff: float):
     nl.cutoff = cutoff
     cell = np.ascontiguousarray(crystal.cell, dtype=np.float64)
     pts = np.ascontiguousarray(crystal.frac @ cell, dtype=np.float64)
-    i, j, S, d = nl.compute(points=pts, box=cell, periodic=True, quantities="ijSd", copy=False)
-    return i.astype(np.int64), j.astype(np.int64), S.astype(np.int64), d.copy()
+    return nl.compute(points=pts, box=cell, periodic=True, quantities="PSd", copy=False)
 
 
-def _references(ratio, zi, zj, i, j, n_atoms, usable, z):
+def _references(ratio, i, j, numbers, usable):
     """Per contact, the criterion-independent references of the relative test:
     the shorter of the two atoms' shortest contacts to each other's element,
     and the shorter of their shortest contacts altogether."""
-    present = np.zeros(128, dtype=bool)
-    present[z] = True
-    zs = np.flatnonzero(present)
-    ne = zs.size
-    lut = np.zeros(128, dtype=np.int64)
-    lut[zs] = np.arange(ne)
-    code_i, code_j = lut[zi], lut[zj]
-    ki, kj = i * ne + code_j, j * ne + code_i
-    ru = ratio[usable]
+    codes: dict[int, int] = {}
+    code = np.array([codes.setdefault(z, len(codes)) for z in numbers.tolist()], dtype=np.int64)
+    ne = len(codes)
+    ki = i * ne + code[j]
+    kj = j * ne + code[i]
+    n_atoms = code.size
+    ru, iu, ju, kiu, kju = ratio, i, j, ki, kj
+    if not usable.all():
+        ru, iu, ju, kiu, kju = ratio[usable], i[usable], j[usable], ki[usable], kj[usable]
     best = np.full(n_atoms * ne, np.inf)
-    np.minimum.at(best, ki[usable], ru)
-    np.minimum.at(best, kj[usable], ru)
+    np.minimum.at(best, kiu, ru)
+    np.minimum.at(best, kju, ru)
     nearest = np.full(n_atoms, np.inf)
-    np.minimum.at(nearest, i[usable], ru)
-    np.minimum.at(nearest, j[usable], ru)
+    np.minimum.at(nearest, iu, ru)
+    np.minimum.at(nearest, ju, ru)
     return np.minimum(best[ki], best[kj]), np.minimum(nearest[i], nearest[j])
 
 
-def _judge(ratio, usable, ref_el, ref_all, criterion: Criterion) -> np.ndarray:
-    rel = criterion.relative
+def _judge(ratio, usable, ref_el, ref_all, core, maximum, relative) -> np.ndarray:
+    """The criterion's decision per contact. core, maximum and relative are a
+    criterion's numbers, or (k, 1) columns of k criteria's numbers, which give
+    k rows of decisions."""
     eps = 1e-9
-    near_el = ratio <= ref_el * rel + eps
-    near_all = ratio <= ref_all * rel + eps
-    extended = criterion.core * EXTENDED_RATIO / CORE_RATIO
-    ok = (ratio <= criterion.core) | (near_el & (ratio <= extended)) | near_all
-    return usable & (ratio <= criterion.maximum) & ok
+    near_el = ratio <= ref_el * relative + eps
+    near_all = ratio <= ref_all * relative + eps
+    extended = core * EXTENDED_RATIO / CORE_RATIO
+    ok = (ratio <= core) | (near_el & (ratio <= extended)) | near_all
+    return usable & (ratio <= maximum) & ok
 
 
-def decide(ratio, zi, zj, i, j, n_atoms, ionic_pair, criterion: Criterion) -> np.ndarray:
-    """Apply the bond criterion to a set of contacts (arrays of equal length)."""
-    if ratio.size == 0:
-        return np.zeros(0, dtype=bool)
-    usable = ~ionic_pair
-    ref_el, ref_all = _references(ratio, zi, zj, i, j, n_atoms, usable, np.concatenate([zi, zj]))
-    return _judge(ratio, usable, ref_el, ref_all, criterion)
+_WOBBLED: dict[tuple, tuple] = {}
+
+
+def _wobbled(criterion: Criterion) -> tuple:
+    """(core, maximum, relative) as (3, 1) columns of the criterion and its
+    scalings by 1 - WOBBLE and 1 + WOBBLE, for one _judge call on all three."""
+    key = (criterion.core, criterion.maximum, criterion.relative)
+    cols = _WOBBLED.get(key)
+    if cols is None:
+        crits = (criterion, criterion.scaled(1 - WOBBLE), criterion.scaled(1 + WOBBLE))
+        cols = tuple(np.array([[getattr(c, k)] for c in crits]) for k in ("core", "maximum", "relative"))
+        if len(_WOBBLED) < 64:
+            _WOBBLED[key] = cols
+    return cols
 
 
 def find_contacts(crystal: Crystal, criterion: Criterion | None = None) -> Contacts:
     criterion = criterion or Criterion()
     z = crystal.numbers
-    n = z.size
     rad = elements.radii()[z]
     # The two largest radii of the elements present (the same floats and
     # the same sum as np.sort(np.unique(rad))[-2:].sum()).
     rmax = sorted(set(rad.tolist()))[-2:]
     cutoff = SEARCH * (rmax[0] + rmax[1] if len(rmax) == 2 else 2 * rmax[0])
-    i, j, S, d = _neighbour_pairs(crystal, float(cutoff))
-    occ = crystal.occupancy
+    pairs, shifts, d = _neighbour_pairs(crystal, float(cutoff))
+    # vesin's indices are size_t; they read the same as int64 (and index faster).
+    pairs = pairs.view(np.int64)
+    i, j = pairs[:, 0], pairs[:, 1]
     ratio = d / (rad[i] + rad[j])
-    keep = ratio <= SEARCH
-    i, j, S, d, ratio = i[keep], j[keep], S[keep], d[keep], ratio[keep]
+    keep = np.flatnonzero(ratio <= SEARCH)
+    i, j, S, d, ratio = i[keep], j[keep], shifts[keep].astype(np.int64), d[keep], ratio[keep]
 
     # Alternatives on split or mixed sites, and genuine overlaps.
+    occ = crystal.occupancy
     close = d < OVERLAP
     if close.any():
         full = (occ[i] + occ[j] > 1.0 + 1e-3) & close
@@ -194,22 +207,23 @@ def find_contacts(crystal: Crystal, criterion: Criterion | None = None) -> Conta
                 f"atoms {crystal.label(a)} and {crystal.label(b)} are {d[k]:.2f} A apart "
                 "(overlapping atoms; duplicated or misplaced site?)"
             )
-    alt = (occ[i] + occ[j] <= 1.0 + 1e-3) & (close | (ratio < 0.75))
-    if alt.any():
-        keep = ~alt
-        i, j, S, d, ratio = i[keep], j[keep], S[keep], d[keep], ratio[keep]
+    # Alternatives need two occupancies adding up to 1 at most: there are
+    # none when every occupancy is above one half.
+    if 2 * occ.min() <= 1.0 + 1e-3:
+        alt = (occ[i] + occ[j] <= 1.0 + 1e-3) & (close | (ratio < 0.75))
+        if alt.any():
+            keep = ~alt
+            i, j, S, d, ratio = i[keep], j[keep], S[keep], d[keep], ratio[keep]
 
-    ep = elements.electropositive_by_z()
-    zi, zj = z[i], z[j]
-    ionic_pair = ep[zi] & ep[zj]
+    ep = elements.electropositive_by_z()[z]
+    ionic_pair = ep[i] & ep[j]
     refs = None
     if ratio.size:
         usable = ~ionic_pair
-        refs = (z, usable) + _references(ratio, zi, zj, i, j, n, usable, z)
-        bonded = _judge(ratio, *refs[1:], criterion)
-        lo = _judge(ratio, *refs[1:], criterion.scaled(1 - WOBBLE))
-        hi = _judge(ratio, *refs[1:], criterion.scaled(1 + WOBBLE))
-        fragile = lo != hi
+        refs = (z, usable) + _references(ratio, i, j, z, usable)
+        judged = _judge(ratio, *refs[1:], *_wobbled(criterion))
+        bonded = judged[0]
+        fragile = judged[1] != judged[2]
     else:
         bonded = fragile = np.zeros(0, dtype=bool)
     return Contacts(i, j, S, d, ratio, occ[i] * occ[j], bonded, fragile, ionic_pair, refs)
@@ -222,13 +236,11 @@ def rescaled(crystal: Crystal, contacts: Contacts, criterion: Criterion) -> Cont
 
     c = contacts
     refs = c.references
-    if refs is not None and (refs[0] is crystal.numbers or np.array_equal(refs[0], crystal.numbers)):
-        bonded = _judge(c.ratio, *refs[1:], criterion)
-    else:
-        z = crystal.numbers
-        bonded = decide(c.ratio, z[c.i], z[c.j], c.i, c.j, crystal.natoms, c.ionic_pair, criterion)
+    if refs is None or not (refs[0] is crystal.numbers or np.array_equal(refs[0], crystal.numbers)):
+        usable = ~c.ionic_pair
+        refs = (crystal.numbers, usable) + _references(c.ratio, c.i, c.j, crystal.numbers, usable)
+    bonded = _judge(c.ratio, *refs[1:], criterion.core, criterion.maximum, criterion.relative)
     return replace(c, bonded=bonded)
-
 
 
 def per_atom(contacts: Contacts, n_atoms: int, occupancy: np.ndarray):
