@@ -34,17 +34,19 @@ class Sites:
     spacegroup_number: int
 
 
+# Place values of the rounded x, y and z in a position's integer key.
+_DIGITS = np.array([2000 * 2000, 2000, 1], dtype=np.int64)
+
+
 def _positions(crystal: Crystal):
     """Group entries that share a position; returns (position index per entry,
     unique fractional positions, type per position)."""
     frac = np.mod(crystal.frac, 1.0)
-    key = np.round(frac * 2000).astype(np.int64) % 2000
+    key = (frac * 2000).round().astype(np.int64) % 2000
     # One integer per rounded position, ordered as the rows (x, y, z) are.
-    key = (key[:, 0] * 2000 + key[:, 1]) * 2000 + key[:, 2]
-    if np.all(crystal.occupancy >= 0.999):
-        sk = np.sort(key)
-        if sk.size < 2 or np.all(sk[1:] != sk[:-1]):
-            return np.arange(crystal.natoms), frac, crystal.numbers.astype(np.int64)
+    key = key @ _DIGITS
+    if (crystal.occupancy >= 0.999).all() and len(set(key.tolist())) == key.size:
+        return np.arange(crystal.natoms), frac, crystal.numbers.astype(np.int64)
     _, pos_of, inverse = np.unique(key, return_index=True, return_inverse=True)
     inverse = inverse.reshape(-1)
     npos = pos_of.size
@@ -134,57 +136,55 @@ def group_sites(crystal: Crystal, contacts) -> Sites:
     a = np.concatenate([pi, pj])
     b = np.concatenate([pj, pi])
     dd = np.concatenate([d, d])
-    lut = np.zeros(int(types.max()) + 1, dtype=np.int64)
-    present = np.zeros(lut.size, dtype=bool)
-    present[types] = True
-    nt = int(present.sum())
-    lut[present] = np.arange(nt)
-    tcode = lut[types]
+    tcode, first_of_type = _first_seen(types.tolist())
+    nt = len(first_of_type)
+    tcode = np.array(tcode, dtype=np.int64)
     tb = tcode[b]
     order = np.lexsort((dd, tb, a))
     a, b, dd, tb = a[order], b[order], dd[order], tb[order]
     ncont = np.bincount(a, minlength=npos)
     # Classes: own type and the number of contacts to each partner type.
     partners = np.bincount(a * nt + tb, minlength=npos * nt).reshape(npos, nt)
-    cls = _first_seen(np.column_stack([tcode, partners]))
+    cls, leader = _first_seen(_rows(tcode, partners))
+    cls = np.array(cls, dtype=np.int64)
     # Distances in a padded table: within a class the rows line up.
     width = int(ncont.max()) if a.size else 0
     table = np.zeros((npos, width))
     starts = np.cumsum(ncont) - ncont
     table[a, np.arange(a.size) - starts[a]] = dd
-    # Each atom joins the first atom of its class whose distances agree.
-    if npos * npos * max(width, 1) <= 2_000_000:
-        same = cls[:, None] == cls[None, :]
-        if width:
-            same &= np.abs(table[:, None, :] - table[None, :, :]).max(axis=2) <= ENV_TOL
-        first = np.argmax(same, axis=1)
-    else:
-        first = np.empty(npos, dtype=np.int64)
-        for c in range(int(cls.max()) + 1):
-            members = np.flatnonzero(cls == c)
-            rows = table[members]
-            close = np.ones((members.size, members.size), dtype=bool)
-            if width:
-                close = np.abs(rows[:, None, :] - rows[None, :, :]).max(axis=2) <= ENV_TOL
-            first[members] = members[np.argmax(close, axis=1)]
-    label = _first_seen(first[:, None])
-    # Refine: the numbers of partners in each group must agree too.
-    ngroup = int(label.max()) + 1
-    while a.size:
+    # Each atom joins the first atom of its class whose distances agree: the
+    # class's first atom, or for the atoms whose distances differ from that
+    # atom's, the first of the earlier atoms of the class that agrees (or
+    # itself), found in blocks of up to 2e6 distance comparisons.
+    first = np.array(leader, dtype=np.int64)[cls]
+    if width:
+        apart = np.flatnonzero(np.abs(table - table[first]).max(axis=1) > ENV_TOL)
+        step = max(1, 2_000_000 // (npos * width))
+        for s in range(0, apart.size, step):
+            f = apart[s : s + step]
+            r, m = np.nonzero((cls[f, None] == cls) & (np.arange(npos) < f[:, None]))
+            agree = np.abs(table[m] - table[f[r]]).max(axis=1) <= ENV_TOL
+            best = f.copy()
+            np.minimum.at(best, r[agree], m[agree])
+            first[f] = best
+    label, first_pos = _first_seen(first.tolist())
+    label = np.array(label, dtype=np.int64)
+    # Refine: the numbers of partners in each group must agree too (there is
+    # nothing to split when every position is a group of its own).
+    ngroup = len(first_pos)
+    while a.size and ngroup < npos:
         counts = np.bincount(a * ngroup + label[b], minlength=npos * ngroup).reshape(npos, ngroup)
-        refined = _first_seen(np.column_stack([label, counts]))
-        n_new = int(refined.max()) + 1
-        if n_new == ngroup:
+        refined, refined_first = _first_seen(_rows(label, counts))
+        if len(refined_first) == ngroup:
             break
-        label, ngroup = refined, n_new
+        label, first_pos, ngroup = np.array(refined, dtype=np.int64), refined_first, len(refined_first)
     # Labels count up in order of first appearance: they are the site numbers.
-    first_pos = np.full(ngroup, npos, dtype=np.int64)
-    np.minimum.at(first_pos, label, np.arange(npos))
-    first_entry = np.full(npos, crystal.natoms, dtype=np.int64)
-    np.minimum.at(first_entry, pos_index, np.arange(crystal.natoms))
+    # The representative is the first entry at the group's first position.
+    pos_list = pos_index.tolist()
+    first_entry = dict(zip(reversed(pos_list), range(len(pos_list) - 1, -1, -1)))
     return Sites(
         site=label[pos_index],
-        representative=first_entry[first_pos],
+        representative=np.array([first_entry[p] for p in first_pos], dtype=np.int64),
         multiplicity=None,
         wyckoff=[None] * ngroup,
         spacegroup="",
@@ -192,8 +192,18 @@ def group_sites(crystal: Crystal, contacts) -> Sites:
     )
 
 
-def _first_seen(rows: np.ndarray) -> np.ndarray:
-    """Number equal rows 0, 1, 2, ... in order of first appearance."""
-    rows = np.ascontiguousarray(rows, dtype=np.int64)
-    seen: dict[bytes, int] = {}
-    return np.array([seen.setdefault(r.tobytes(), len(seen)) for r in rows], dtype=np.int64)
+def _rows(first_column: np.ndarray, rest: np.ndarray) -> list[bytes]:
+    """The rows of [first_column | rest] (integers) as bytes, equal exactly
+    when the rows are equal."""
+    m = np.concatenate([first_column[:, None], rest], axis=1).astype(np.int64, copy=False)
+    return m.view(np.dtype((np.void, 8 * m.shape[1]))).ravel().tolist()
+
+
+def _first_seen(keys) -> tuple[list[int], list[int]]:
+    """Number equal keys 0, 1, 2, ... in order of first appearance; also
+    returns the index of the first appearance of each number."""
+    seen: dict = {}
+    labels = [seen.setdefault(key, len(seen)) for key in keys]
+    # Walking backwards, the last index written for a number is its first.
+    first = dict(zip(reversed(labels), range(len(labels) - 1, -1, -1)))
+    return labels, [first[n] for n in range(len(seen))]
