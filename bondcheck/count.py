@@ -560,6 +560,20 @@ def _local_totals(w: float, options: tuple, kind: type) -> dict:
     return local
 
 
+# Totals of kept electrons are rounded to 4 decimals. The searches hold them
+# as whole numbers of 1e-4 electrons: these add exactly, and u / UNITS is the
+# float that rounding the sum of the two floats to 4 decimals would give
+# (each float is within far less than 0.5e-4 of its 4-decimal value).
+UNITS = 10000
+
+
+@lru_cache(maxsize=4096)
+def _local_units(w: float, options: tuple, kind: type) -> tuple:
+    """`_local_totals` as ((total in units of 1/UNITS, (cost, electrons per
+    atom, mixed)), ...), cached."""
+    return tuple((round(t * UNITS), v) for t, v in _local_totals(w, options, kind).items())
+
+
 MAX_STATES = 20000
 
 
@@ -602,6 +616,7 @@ def _search(options, lo: float = -math.inf, hi: float = math.inf):
     leaves more than MAX_STATES totals; the window is used only where that
     cannot happen."""
     locs = []
+    units = []
     for g, w, opts in options:
         if not opts:
             # A group without options leaves no totals, unless the enumeration
@@ -609,7 +624,9 @@ def _search(options, lo: float = -math.inf, hi: float = math.inf):
             if _few_totals(locs):
                 return {}, 0.0
             return _enumerate(options)
-        locs.append((g, _local_totals(w, opts, type(opts[0][0]))))
+        kind = type(opts[0][0])
+        locs.append((g, _local_totals(w, opts, kind)))
+        units.append(_local_units(w, opts, kind))
     windowed = (lo > -math.inf or hi < math.inf) and _few_totals(locs)
     if not windowed:
         return _enumerate(options)
@@ -625,30 +642,32 @@ def _search(options, lo: float = -math.inf, hi: float = math.inf):
     top = 0.0
     for _g, loc in locs:
         top = round(top + max(loc), 4)
-    states: dict[float, tuple[float, tuple | None]] = {0.0: (0.0, None)}
-    for L, (g, local) in enumerate(locs):
+    states: dict[int, tuple[float, tuple | None]] = {0: (0.0, None)}
+    for L, (g, _loc) in enumerate(locs):
         slack = (n - L) * 1e-4 + 1e-6
         a, b = lo - slack - rest_hi[L], hi + slack - rest_lo[L]
-        states = _combine(states, local.items(), g, a, b)
+        states = _combine(states, units[L], g, a, b)
         if not states:
             break
-    return states, top
+    return {u / UNITS: v for u, v in states.items()}, top
 
 
 def _combine(states, items, g, a=-math.inf, b=math.inf):
     """Add one group's choices to every total in [a, b], keeping the cheapest
-    way to each new total and a back-pointer to how it was reached."""
-    new: dict[float, tuple[float, tuple | None]] = {}
+    way to each new total and a back-pointer to how it was reached. Totals
+    are in units of 1/UNITS (the bounds a, b in electrons)."""
+    new: dict[int, tuple[float, tuple | None]] = {}
     get = new.get
-    for t0, (c0, p0) in states.items():
+    for u0, (c0, p0) in states.items():
+        t0 = u0 / UNITS
         if t0 < a or t0 > b:
             continue
-        for t1, (c1, k, mixed) in items:
-            t = round(t0 + t1, 4)
+        for u1, (c1, k, mixed) in items:
+            u = u0 + u1
             cost = c0 + c1
-            old = get(t)
+            old = get(u)
             if old is None or old[0] > cost:
-                new[t] = (cost, (g, k, mixed, p0))
+                new[u] = (cost, (g, k, mixed, p0))
     return new
 
 
@@ -670,14 +689,14 @@ def _few_totals(locs) -> bool:
 
 def _enumerate(options):
     """Every reachable total (the window-free case of `_reachable`)."""
-    states: dict[float, tuple[float, tuple | None]] = {0.0: (0.0, None)}
+    states: dict[int, tuple[float, tuple | None]] = {0: (0.0, None)}
     for g, w, opts in options:
         if not opts:
             return {}, 0.0
-        states = _combine(states, _local_totals(w, opts, type(opts[0][0])).items(), g)
+        states = _combine(states, _local_units(w, opts, type(opts[0][0])), g)
         if len(states) > MAX_STATES:
             break
-    return states, max(states, default=0.0)
+    return {u / UNITS: v for u, v in states.items()}, max(states, default=0) / UNITS
 
 
 def _match(totals, needed: float, tol: float):
