@@ -96,10 +96,10 @@ def formula_of(crystal: Crystal) -> tuple[str, float]:
     syms = elements.symbols()
     en = elements.pauling()
     occ, numbers = crystal.occupancy, crystal.numbers
-    if occ.min() == 1.0 and occ.max() == 1.0 and numbers.min() >= 0:
+    if (occ == 1.0).all():
         # Full occupancy: the amounts are the atom counts.
-        per_z = np.bincount(numbers)
-        amounts = {z: float(per_z[z]) for z in np.flatnonzero(per_z).tolist()}
+        zs = numbers.tolist()
+        amounts = {z: float(zs.count(z)) for z in set(zs)}
     else:
         amounts = {int(z): float(np.sum(occ[numbers == z])) for z in np.unique(numbers)}
     ints = [round(a) for a in amounts.values()]
@@ -169,9 +169,15 @@ def check_crystal(crystal: Crystal, options: Options | None = None) -> Result:
 def _validate(crystal: Crystal) -> None:
     if crystal.natoms == 0:
         raise StructureError("no atoms in the structure")
-    v = crystal.volume
-    if not math.isfinite(v) or v < 1e-3:
-        raise StructureError(f"cell volume is {v:.3g} A^3: the cell is degenerate")
+    # The volume as a triple product decides the usual case; near the limit
+    # (or for a cell that is not finite) the determinant decides and is shown.
+    (a1, a2, a3), (b1, b2, b3), (c1, c2, c3) = crystal.cell.tolist()
+    terms = (a1 * (b2 * c3), a1 * (b3 * c2), a2 * (b1 * c3), a2 * (b3 * c1), a3 * (b1 * c2), a3 * (b2 * c1))
+    v = abs(terms[0] - terms[1] - terms[2] + terms[3] + terms[4] - terms[5])
+    if not v - 1e-12 * sum(map(abs, terms)) >= 2e-3:
+        v = crystal.volume
+        if not math.isfinite(v) or v < 1e-3:
+            raise StructureError(f"cell volume is {v:.3g} A^3: the cell is degenerate")
     if crystal.numbers.min() < 1 or crystal.numbers.max() > 103:
         raise StructureError("unknown element in the structure")
 
@@ -188,21 +194,18 @@ def _fragile_sites(crystal, contacts, sites, c: Count | None, options: Options, 
     atoms = np.zeros(crystal.natoms, dtype=bool)
     atoms[contacts.i[f]] = True
     atoms[contacts.j[f]] = True
-    labels = []
-    for s in np.unique(sites.site[atoms]):
-        rep = int(sites.representative[s])
-        labels.append(crystal.label(rep))
-    return labels
+    rep = sites.representative
+    return [crystal.label(int(rep[s])) for s in sorted(set(sites.site[atoms].tolist()))]
 
 
 
-def _group_mean(x: np.ndarray, inv: np.ndarray, counts: np.ndarray) -> np.ndarray:
+def _group_mean(x: np.ndarray, inv: np.ndarray, counts: np.ndarray, crowded: list[int]) -> np.ndarray:
     """Mean of x over each group, equal to np.mean of the group's values:
     bincount adds in order as np.mean does below 8 values, and any order
-    gives the same sum of whole numbers."""
+    gives the same sum of whole numbers. crowded: the groups of 8 or more."""
     out = np.bincount(inv, weights=x, minlength=counts.size) / counts
-    if counts.max() >= 8 and not np.array_equal(x, np.rint(x)):
-        for g in np.flatnonzero(counts >= 8):
+    if crowded and not (x == np.rint(x)).all():
+        for g in crowded:
             out[g] = np.mean(x[inv == g])
     return out
 
@@ -217,44 +220,49 @@ def _group_extreme(x: np.ndarray, inv: np.ndarray, ng: int, fn) -> np.ndarray:
 
 def _site_rows(crystal, sites, c: Count | None, coord, nearest, last, first_out, fragile) -> list[dict]:
     """One row per (site, element), in order of the first atom of each."""
-    numbers = crystal.numbers
-    key = sites.site.astype(np.int64) * 128 + numbers
-    uniq, first, inv = np.unique(key, return_index=True, return_inverse=True)
-    inv = inv.reshape(-1)
-    ng = uniq.size
+    isfinite = math.isfinite
+
+    def r3_all(values: np.ndarray) -> list[float | None]:  # _r3 of each value
+        return [round(x, 3) + 0.0 if isfinite(x) else None for x in values.tolist()]
+
+    # Groups of atoms by (site, element), numbered in order of their first atom.
+    groups: dict[tuple[int, int], int] = {}
+    inv_list = [groups.setdefault(key, len(groups)) for key in zip(sites.site.tolist(), crystal.numbers.tolist())]
+    ng = len(groups)
+    first_of = dict(zip(reversed(inv_list), range(len(inv_list) - 1, -1, -1)))  # the last write is the first atom
+    first = [first_of[u] for u in range(ng)]
+    inv = np.array(inv_list, dtype=np.int64)
     counts = np.bincount(inv, minlength=ng)
-    occ = _group_mean(crystal.occupancy, inv, counts).tolist()
-    coordination = _group_mean(coord, inv, counts).tolist()
-    near = _group_extreme(nearest, inv, ng, np.fmin).tolist()
-    lastb = _group_extreme(last, inv, ng, np.fmax).tolist()
-    firstu = _group_extreme(first_out, inv, ng, np.fmin).tolist()
+    crowded = [u for u, n in enumerate(counts.tolist()) if n >= 8]
+    occ = _group_mean(crystal.occupancy, inv, counts, crowded).tolist()
+    coordination = r3_all(_group_mean(coord, inv, counts, crowded))
+    near = r3_all(_group_extreme(nearest, inv, ng, np.fmin))
+    lastb = r3_all(_group_extreme(last, inv, ng, np.fmax))
+    firstu = r3_all(_group_extreme(first_out, inv, ng, np.fmin))
     frag = (np.bincount(inv[fragile], minlength=ng) > 0).tolist()
-    site_of = (uniq // 128).tolist()
-    z_of = (uniq % 128).tolist()
-    mult = sites.multiplicity
+    mult = None if sites.multiplicity is None else sites.multiplicity.tolist()
     if c is not None:
-        bonds = _group_mean(c.aa_bonds, inv, counts).tolist()
+        bonds = _group_mean(c.aa_bonds, inv, counts, crowded).tolist()
         role_first = c.role[first].tolist()
         group_first = c.group_of[first].tolist()
         keep = c.closure.keep if c.closure.closes else {}
     rows = []
-    for u in np.argsort(first, kind="stable").tolist():
-        k = int(first[u])
-        s = site_of[u]
-        sym, _block, valence, keep_opts = _element_facts(z_of[u])
+    for u, (s, z) in enumerate(groups):
+        sym, _block, valence, keep_opts = _element_facts(z)
+        fu, lb = firstu[u], lastb[u]
         row = {
-            "label": crystal.label(k),
+            "label": crystal.label(first[u]),
             "element": sym,
-            "multiplicity": None if mult is None else int(mult[s]),
+            "multiplicity": None if mult is None else mult[s],
             "wyckoff": sites.wyckoff[s],
             "occupancy": round(occ[u], 4),
             "role": None,
-            "coordination": _r3(coordination[u]),
+            "coordination": coordination[u],
             "bonds": None,
             "formal_charge": None,
-            "nearest": _r3(near[u]),
-            "last_bonded": _r3(lastb[u]),
-            "first_unbonded": _r3(firstu[u]),
+            "nearest": near[u],
+            "last_bonded": lb,
+            "first_unbonded": fu,
             "fragile": frag[u],
         }
         if c is not None:
@@ -270,7 +278,7 @@ def _site_rows(crystal, sites, c: Count | None, coord, nearest, last, first_out,
                     row["formal_charge"] = _r3(valence - keep[g])
                 elif keep_opts == {0: 0}:
                     row["formal_charge"] = _r3(float(valence))
-        row["gap"] = _r3(row["first_unbonded"] - row["last_bonded"]) if row["first_unbonded"] and row["last_bonded"] else None
+        row["gap"] = _r3(fu - lb) if fu and lb else None
         rows.append(row)
     return rows
 
