@@ -245,28 +245,25 @@ def rescaled(crystal: Crystal, contacts: Contacts, criterion: Criterion) -> Cont
 
 def per_atom(contacts: Contacts, n_atoms: int, occupancy: np.ndarray):
     """Per-atom coordination (occupancy weighted), nearest ratio, last bonded
-    ratio, first unbonded ratio and fragility."""
+    ratio, first unbonded ratio (NaN where an atom has no such contact) and
+    fragility."""
     c = contacts
+    # Both ends of every contact: atom, partner, ratio, bonded, usable.
     both_i = np.concatenate([c.i, c.j])
     both_j = np.concatenate([c.j, c.i])
     ratio2 = np.concatenate([c.ratio, c.ratio])
     bonded2 = np.concatenate([c.bonded, c.bonded])
     usable2 = ~np.concatenate([c.ionic_pair, c.ionic_pair])
-    fragile2 = np.concatenate([c.fragile, c.fragile])
-    coord = np.bincount(both_i[bonded2], weights=occupancy[both_j[bonded2]], minlength=n_atoms)
-    nearest = np.full(n_atoms, np.nan)
+    at, r = both_i[bonded2], ratio2[bonded2]
+    coord = np.bincount(at, weights=occupancy[both_j[bonded2]], minlength=n_atoms)
     last = np.full(n_atoms, np.nan)
-    first_out = np.full(n_atoms, np.nan)
-    tmp = np.full(n_atoms, np.inf)
-    np.minimum.at(tmp, both_i[usable2], ratio2[usable2])
-    nearest[np.isfinite(tmp)] = tmp[np.isfinite(tmp)]
-    tmp = np.full(n_atoms, -np.inf)
-    np.maximum.at(tmp, both_i[bonded2], ratio2[bonded2])
-    last[np.isfinite(tmp)] = tmp[np.isfinite(tmp)]
-    tmp = np.full(n_atoms, np.inf)
+    np.fmax.at(last, at, r)
+    nearest = np.full(n_atoms, np.nan)
+    np.fmin.at(nearest, both_i[usable2], ratio2[usable2])
     out = usable2 & ~bonded2
-    np.minimum.at(tmp, both_i[out], ratio2[out])
-    first_out[np.isfinite(tmp)] = tmp[np.isfinite(tmp)]
+    first_out = np.full(n_atoms, np.nan)
+    np.fmin.at(first_out, both_i[out], ratio2[out])
     fragile = np.zeros(n_atoms, dtype=bool)
-    fragile[both_i[fragile2]] = True
+    fragile[c.i[c.fragile]] = True
+    fragile[c.j[c.fragile]] = True
     return coord, nearest, last, first_out, fragile
