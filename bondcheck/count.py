@@ -220,17 +220,23 @@ def _static(crystal: Crystal, sites: Sites, valence: dict[str, int]) -> tuple:
     capable_atom = elements.capable_by_z()[z]
     # Atoms that are not electropositive (the only cations that may bond to each other).
     not_ep_atom = ~elements.electropositive_by_z()[z]
-    # Groups: one per (site, element).
-    gkey = site.astype(np.int64) * 128 + z
-    uniq, group_of = np.unique(gkey, return_inverse=True)
-    group_of = group_of.reshape(-1)
-    groups = [(k // 128, k % 128) for k in uniq.tolist()]
+    capable_z = frozenset(z[capable_atom].tolist())
+    not_ep_z = frozenset(z[not_ep_atom].tolist())
+    # Groups: one per (site, element), in order of site, then element.
+    gkey = (site.astype(np.int64) * 128 + z).tolist()
+    uniq = sorted(set(gkey))
+    index = {k: g for g, k in enumerate(uniq)}
+    group_of = np.array([index[k] for k in gkey], dtype=np.intp)
+    groups = [(k // 128, k % 128) for k in uniq]
     group_weight = np.bincount(group_of, weights=occ, minlength=len(uniq)).tolist()
     group_size = np.bincount(group_of, minlength=len(uniq))
     occ_target = occ * _TARGET_BY_Z[z]
     for arr in (capable_atom, not_ep_atom, group_of, group_size, occ_target):
         arr.setflags(write=False)
-    out = (sym_of_atom, present, electrons, capable_atom, not_ep_atom, group_of, groups, group_weight, group_size, occ_target)
+    out = (
+        sym_of_atom, present, electrons, capable_atom, capable_z, not_ep_atom, not_ep_z,
+        group_of, groups, group_weight, group_size, occ_target,
+    )
     _LOCAL.static = (key, out)
     return out
 
@@ -244,8 +250,8 @@ class _Context:
         self.valence_override = valence
         self.occ = crystal.occupancy
         (
-            self.sym_of_atom, self.present, self.electrons, self.capable_atom, self.not_ep_atom,
-            self.group_of, self.groups, self.group_weight, self.group_size, self.occ_target,
+            self.sym_of_atom, self.present, self.electrons, self.capable_atom, self.capable_z, self.not_ep_atom,
+            self.not_ep_z, self.group_of, self.groups, self.group_weight, self.group_size, self.occ_target,
         ) = _static(crystal, sites, valence)
         c = contacts
         self.bonded = c.bonded
@@ -299,9 +305,10 @@ class _Context:
         cr = self.crystal
         z = cr.numbers
         nums = elements.numbers()
+        anion_z = {nums[a] for a in anions}
         an_z = np.zeros(128, dtype=bool)
-        for a in anions:
-            an_z[nums[a]] = True
+        for k in anion_z:
+            an_z[k] = True
         role = an_z[z]
         occ = self.occ
         n = len(z)
@@ -311,10 +318,14 @@ class _Context:
         ca = rbi != rbj
         # Cation-cation bonds: between non-electropositive cations, and only
         # as long as the bridging test below allows.
-        may_bond = ~role & self.not_ep_atom
-        cc = may_bond[bi] & may_bond[bj]
-        cc_any = bool(cc.any())
-        lonely_possible = bool((self.capable_atom & ~role).any())
+        if self.not_ep_z <= anion_z:
+            cc = np.zeros(len(bi), dtype=bool)
+            cc_any = False
+        else:
+            may_bond = ~role & self.not_ep_atom
+            cc = may_bond[bi] & may_bond[bj]
+            cc_any = bool(cc.any())
+        lonely_possible = not self.capable_z <= anion_z
         if cc_any or lonely_possible:
             ica, jca = bi[ca], bj[ca]
             dcnt = np.bincount(ica, minlength=n) + np.bincount(jca, minlength=n)
@@ -329,7 +340,7 @@ class _Context:
         n_anion = float(occ[role].sum())
         shell = float(self.occ_target[role].sum())
         aa_ends = 2.0 * float(bw[aa].sum())
-        cc_e = 2.0 * float(bw[cc].sum())
+        cc_e = 2.0 * float(bw[cc].sum()) if cc_any else 0.0
         vec = self.electrons / n_anion
         mean_target = shell / n_anion
         aa_obs = aa_ends / n_anion
@@ -393,6 +404,8 @@ class _Context:
         """Electrons that pi bonding could supply: 1 per planar three-bonded
         anion, and 2 per extra bond order at short anion-anion contacts
         between other anions."""
+        if not aa.any():
+            return 0.0, 0.0  # no anion has an anion neighbour
         c = self.contacts
         bi, bj, bd, bw = self.bi, self.bj, self.bd, self.bw
         n = self.crystal.natoms
