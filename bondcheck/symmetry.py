@@ -136,8 +136,8 @@ def group_sites(crystal: Crystal, contacts) -> Sites:
     a = np.concatenate([pi, pj])
     b = np.concatenate([pj, pi])
     dd = np.concatenate([d, d])
-    tcode, first_of_type = _first_seen(types.tolist())
-    nt = len(first_of_type)
+    tcode = _first_seen(types.tolist())
+    nt = max(tcode) + 1
     tcode = np.array(tcode, dtype=np.int64)
     tb = tcode[b]
     order = np.lexsort((dd, tb, a))
@@ -145,13 +145,14 @@ def group_sites(crystal: Crystal, contacts) -> Sites:
     ncont = np.bincount(a, minlength=npos)
     # Classes: own type and the number of contacts to each partner type.
     partners = np.bincount(a * nt + tb, minlength=npos * nt).reshape(npos, nt)
-    cls, leader = _first_seen(_rows(tcode, partners))
+    cls = _first_seen(_rows(tcode, partners))
+    leader = _first_index(cls)
     cls = np.array(cls, dtype=np.int64)
-    # Distances in a padded table: within a class the rows line up.
+    # Distances in a padded table (column: the contact's place among the
+    # atom's contacts): within a class the rows line up.
     width = int(ncont.max()) if a.size else 0
     table = np.zeros((npos, width))
-    starts = np.cumsum(ncont) - ncont
-    table[a, np.arange(a.size) - starts[a]] = dd
+    table[a, np.arange(a.size) - np.searchsorted(a, a)] = dd
     # Each atom joins the first atom of its class whose distances agree: the
     # class's first atom, or for the atoms whose distances differ from that
     # atom's, the first of the earlier atoms of the class that agrees (or
@@ -167,19 +168,22 @@ def group_sites(crystal: Crystal, contacts) -> Sites:
             best = f.copy()
             np.minimum.at(best, r[agree], m[agree])
             first[f] = best
-    label, first_pos = _first_seen(first.tolist())
+    label = _first_seen(first.tolist())
+    ngroup = max(label) + 1
     label = np.array(label, dtype=np.int64)
     # Refine: the numbers of partners in each group must agree too (there is
     # nothing to split when every position is a group of its own).
-    ngroup = len(first_pos)
     while a.size and ngroup < npos:
         counts = np.bincount(a * ngroup + label[b], minlength=npos * ngroup).reshape(npos, ngroup)
-        refined, refined_first = _first_seen(_rows(label, counts))
-        if len(refined_first) == ngroup:
+        keys = _rows(label, counts)
+        if len(set(keys)) == ngroup:
             break
-        label, first_pos, ngroup = np.array(refined, dtype=np.int64), refined_first, len(refined_first)
+        label = _first_seen(keys)
+        ngroup = max(label) + 1
+        label = np.array(label, dtype=np.int64)
     # Labels count up in order of first appearance: they are the site numbers.
     # The representative is the first entry at the group's first position.
+    first_pos = _first_index(label.tolist())
     pos_list = pos_index.tolist()
     first_entry = dict(zip(reversed(pos_list), range(len(pos_list) - 1, -1, -1)))
     return Sites(
@@ -199,11 +203,14 @@ def _rows(first_column: np.ndarray, rest: np.ndarray) -> list[bytes]:
     return m.view(np.dtype((np.void, 8 * m.shape[1]))).ravel().tolist()
 
 
-def _first_seen(keys) -> tuple[list[int], list[int]]:
-    """Number equal keys 0, 1, 2, ... in order of first appearance; also
-    returns the index of the first appearance of each number."""
+def _first_seen(keys) -> list[int]:
+    """Number equal keys 0, 1, 2, ... in order of first appearance."""
     seen: dict = {}
-    labels = [seen.setdefault(key, len(seen)) for key in keys]
+    return [seen.setdefault(key, len(seen)) for key in keys]
+
+
+def _first_index(labels: list[int]) -> list[int]:
+    """The index of the first appearance of each number of _first_seen."""
     # Walking backwards, the last index written for a number is its first.
     first = dict(zip(reversed(labels), range(len(labels) - 1, -1, -1)))
-    return labels, [first[n] for n in range(len(seen))]
+    return [first[n] for n in range(len(first))]
