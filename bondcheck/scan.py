@@ -145,10 +145,11 @@ def _answer(e: Entry, job: tuple) -> tuple:
     """What a worker sends back for one entry: (seq, status, rows, blob,
     texts).  The store's blob and the JSON text of each row are made here, in
     parallel, rather than in the main process; ``rows`` are whole only when
-    the main process needs them (job = (options, full_rows, limits))."""
+    the main process needs them, the blob only when there is a store
+    (job = (options, full_rows, limits, to_store))."""
     from .limits import applied
 
-    options, full, limits = job
+    options, full, limits, to_store = job
     with applied(limits):
         status, rows = check_entry(e, options)
     texts = []
@@ -156,7 +157,7 @@ def _answer(e: Entry, job: tuple) -> tuple:
         g = {"path": d.get("path") or ""}
         g.update(d)
         texts.append(json.dumps(g, separators=(",", ":"), allow_nan=False))
-    blob = zlib.compress(("[" + ",".join(texts) + "]").encode(), 1)
+    blob = zlib.compress(("[" + ",".join(texts) + "]").encode(), 1) if to_store else None
     return e.seq, status, rows if full else [_brief(d) for d in rows], blob, texts
 
 
@@ -571,7 +572,7 @@ class Scanner:
         self.okey = settings_key(self.options)
         # the limits in force here (bondcheck.limits) go to the workers too
         self.limits = limits or current()
-        self.job = (self.options, full_rows, self.limits)
+        self.job = (self.options, full_rows, self.limits, store is not None)
         self.jobs = default_jobs() if not jobs else int(jobs)
         self.timeout = float(timeout) if timeout else None
         self.executor_name = executor
