@@ -436,10 +436,11 @@ class _Context:
         tetrahedral framework atom): no room for a lone pair."""
         n = self.crystal.natoms
         short = ca & (self.contacts.ratio[self.bonded] <= SATURATED_RATIO)
-        ends = np.concatenate([self.bi[short], self.bj[short]])
-        dd = np.concatenate([self.bd[short], self.bd[short]])
-        out = ~role & (np.bincount(ends, minlength=n) >= 4)
+        i, j = self.bi[short], self.bj[short]
+        out = ~role & (np.bincount(i, minlength=n) + np.bincount(j, minlength=n) >= 4)
         if out.any():
+            ends = np.concatenate([i, j])
+            dd = np.concatenate([self.bd[short], self.bd[short]])
             lo = np.full(n, np.inf)
             hi = np.zeros(n)
             np.minimum.at(lo, ends, dd)
@@ -546,14 +547,9 @@ def _element_facts(z: int) -> tuple:
     return f
 
 
-@lru_cache(maxsize=4096)
-def _local_totals(w: float, options: tuple, kind: type) -> dict:
+def _local_totals(w: float, options: tuple) -> dict:
     """Kept electrons of one group of weight w with options ((kept electrons
-    per atom, cost), ...): total -> (cost, electrons per atom, mixed).
-
-    Cached; the dict is shared and must not be changed. `kind` is the type of
-    the kept electrons (int or float), so that option sets that compare equal
-    but hand back different types are kept apart."""
+    per atom, cost), ...): total -> (cost, electrons per atom, mixed)."""
     local: dict[float, tuple[float, float, bool]] = {}
     items = sorted(options)
     for k, c in items:
@@ -581,10 +577,16 @@ UNITS = 10000
 
 
 @lru_cache(maxsize=4096)
-def _local_units(w: float, options: tuple, kind: type) -> tuple:
-    """`_local_totals` as ((total in units of 1/UNITS, (cost, electrons per
-    atom, mixed)), ...), cached."""
-    return tuple((round(t * UNITS), v) for t, v in _local_totals(w, options, kind).items())
+def _local(w: float, options: tuple, kind: type) -> tuple:
+    """One group's totals as the searches use them, cached: (choices,
+    smallest, largest, whole). choices: ((total in units of 1/UNITS, (cost,
+    electrons per atom, mixed)), ...) from `_local_totals`; smallest and
+    largest total in electrons; whole: every total a whole number. `kind` is
+    the type of the kept electrons (int or float), so that option sets that
+    compare equal but hand back different types are kept apart."""
+    totals = _local_totals(w, options)
+    choices = tuple((round(t * UNITS), v) for t, v in totals.items())
+    return choices, min(totals), max(totals), all(t == int(t) for t in totals)
 
 
 MAX_STATES = 20000
@@ -629,7 +631,6 @@ def _search(options, lo: float = -math.inf, hi: float = math.inf):
     leaves more than MAX_STATES totals; the window is used only where that
     cannot happen."""
     locs = []
-    units = []
     for g, w, opts in options:
         if not opts:
             # A group without options leaves no totals, unless the enumeration
@@ -637,9 +638,7 @@ def _search(options, lo: float = -math.inf, hi: float = math.inf):
             if _few_totals(locs):
                 return {}, 0.0
             return _enumerate(options)
-        kind = type(opts[0][0])
-        locs.append((g, _local_totals(w, opts, kind)))
-        units.append(_local_units(w, opts, kind))
+        locs.append((g, _local(w, opts, type(opts[0][0]))))
     windowed = (lo > -math.inf or hi < math.inf) and _few_totals(locs)
     if not windowed:
         return _enumerate(options)
@@ -649,17 +648,17 @@ def _search(options, lo: float = -math.inf, hi: float = math.inf):
     rest_lo = [0.0] * (n + 1)
     rest_hi = [0.0] * (n + 1)
     for L in range(n - 1, -1, -1):
-        loc = locs[L][1]
-        rest_lo[L] = rest_lo[L + 1] + min(loc)
-        rest_hi[L] = rest_hi[L + 1] + max(loc)
+        _choices, smallest, largest, _whole = locs[L][1]
+        rest_lo[L] = rest_lo[L + 1] + smallest
+        rest_hi[L] = rest_hi[L + 1] + largest
     top = 0.0
-    for _g, loc in locs:
-        top = round(top + max(loc), 4)
+    for _g, (_choices, _smallest, largest, _whole) in locs:
+        top = round(top + largest, 4)
     states: dict[int, tuple[float, tuple | None]] = {0: (0.0, None)}
-    for L, (g, _loc) in enumerate(locs):
+    for L, (g, (choices, _smallest, _largest, _whole)) in enumerate(locs):
         slack = (n - L) * 1e-4 + 1e-6
         a, b = lo - slack - rest_hi[L], hi + slack - rest_lo[L]
-        states = _combine(states, units[L], g, a, b)
+        states = _combine(states, choices, g, a, b)
         if not states:
             break
     return {u / UNITS: v for u, v in states.items()}, top
@@ -685,17 +684,18 @@ def _combine(states, items, g, a=-math.inf, b=math.inf):
 
 
 def _few_totals(locs) -> bool:
-    """True when no group can leave more than MAX_STATES distinct totals."""
+    """True when no group can leave more than MAX_STATES distinct totals
+    (locs: (group, `_local` record) per group)."""
     bound = 1
-    for _g, loc in locs:
-        bound *= len(loc)
+    for _g, (choices, _smallest, _largest, _whole) in locs:
+        bound *= len(choices)
         if bound > MAX_STATES:
             break
     if bound <= MAX_STATES:
         return True
-    if all(t == int(t) for _g, loc in locs for t in loc):
+    if all(whole for _g, (_c, _s, _l, whole) in locs):
         # Whole totals: at most (largest - smallest + 1) of them.
-        span = sum(max(loc) - min(loc) for _g, loc in locs)
+        span = sum(largest - smallest for _g, (_c, smallest, largest, _w) in locs)
         return span + 1 <= MAX_STATES
     return False
 
@@ -706,7 +706,7 @@ def _enumerate(options):
     for g, w, opts in options:
         if not opts:
             return {}, 0.0
-        states = _combine(states, _local_units(w, opts, type(opts[0][0])), g)
+        states = _combine(states, _local(w, opts, type(opts[0][0]))[0], g)
         if len(states) > MAX_STATES:
             break
     return {u / UNITS: v for u, v in states.items()}, max(states, default=0) / UNITS
