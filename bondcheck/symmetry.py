@@ -46,17 +46,16 @@ def _positions(crystal: Crystal):
     # One integer per rounded position, ordered as the rows (x, y, z) are.
     key = key @ _DIGITS
     if (crystal.occupancy >= 0.999).all() and len(set(key.tolist())) == key.size:
+        # Fully occupied atoms at distinct positions: each is a position.
         return np.arange(crystal.natoms), frac, crystal.numbers.astype(np.int64)
     _, pos_of, inverse = np.unique(key, return_index=True, return_inverse=True)
     inverse = inverse.reshape(-1)
     npos = pos_of.size
-    if npos == crystal.natoms and np.all(crystal.occupancy >= 0.999):
-        types = crystal.numbers.astype(np.int64)
-        return np.arange(crystal.natoms), frac, types
     # Composite type per position: sorted (Z, occupancy) tuples.
+    zs, occs = crystal.numbers.tolist(), crystal.occupancy.tolist()
     combos: dict[int, list] = {}
-    for k, p in enumerate(inverse):
-        combos.setdefault(int(p), []).append((int(crystal.numbers[k]), round(float(crystal.occupancy[k]), 3)))
+    for k, p in enumerate(inverse.tolist()):
+        combos.setdefault(p, []).append((zs[k], round(occs[k], 3)))
     names: dict[tuple, int] = {}
     types = np.empty(npos, dtype=np.int64)
     for p in range(npos):
