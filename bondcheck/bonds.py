@@ -188,8 +188,9 @@ def find_contacts(crystal: Crystal, criterion: Criterion | None = None) -> Conta
     rmax = sorted(set(rad.tolist()))[-2:]
     cutoff = SEARCH * (rmax[0] + rmax[1] if len(rmax) == 2 else 2 * rmax[0])
     pairs, shifts, d = _neighbour_pairs(crystal, float(cutoff))
-    # vesin's indices are size_t; they read the same as int64 (and index faster).
-    pairs = pairs.view(np.int64)
+    # vesin's indices are size_t: read as the signed integers of that size
+    # (the same values, and faster to index with).
+    pairs = pairs.view(np.intp)
     i, j = pairs[:, 0], pairs[:, 1]
     ratio = d / (rad[i] + rad[j])
     keep = np.flatnonzero(ratio <= SEARCH)
