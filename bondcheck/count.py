@@ -99,6 +99,18 @@ class Count:
     note: str = ""
 
 
+@dataclass(slots=True)
+class _Split:
+    """What closing the count of one anion set needs."""
+
+    anion_z: set[int]  # atomic numbers of the anions
+    role: np.ndarray  # per atom: True for anions
+    aa: np.ndarray  # per bond: anion-anion
+    ca: np.ndarray  # per bond: cation-anion
+    per: np.ndarray  # per atom: homonuclear-role bonds (as Count.aa_bonds)
+    cc_any: bool  # some cation-cation bond counts
+
+
 def candidate_partitions(crystal: Crystal) -> list[tuple[list[str], str]]:
     """Anion sets to try, in order: the most electronegative anion-capable
     element, then the next ones added in order of electronegativity."""
@@ -228,6 +240,7 @@ def _static(crystal: Crystal, sites: Sites, valence: dict[str, int]) -> tuple:
     index = {k: g for g, k in enumerate(uniq)}
     group_of = np.array([index[k] for k in gkey], dtype=np.intp)
     groups = [(k // 128, k % 128) for k in uniq]
+    group_elements = [(zz, *_element_facts(zz)[:2]) for _site, zz in groups]  # (Z, symbol, block)
     group_weight = np.bincount(group_of, weights=occ, minlength=len(uniq)).tolist()
     group_size = np.bincount(group_of, minlength=len(uniq))
     occ_target = occ * _TARGET_BY_Z[z]
@@ -235,7 +248,7 @@ def _static(crystal: Crystal, sites: Sites, valence: dict[str, int]) -> tuple:
         arr.setflags(write=False)
     out = (
         sym_of_atom, present, electrons, capable_atom, capable_z, not_ep_atom, not_ep_z,
-        group_of, groups, group_weight, group_size, occ_target,
+        group_of, groups, group_elements, group_weight, group_size, occ_target,
     )
     _LOCAL.static = (key, out)
     return out
@@ -251,7 +264,8 @@ class _Context:
         self.occ = crystal.occupancy
         (
             self.sym_of_atom, self.present, self.electrons, self.capable_atom, self.capable_z, self.not_ep_atom,
-            self.not_ep_z, self.group_of, self.groups, self.group_weight, self.group_size, self.occ_target,
+            self.not_ep_z, self.group_of, self.groups, self.group_elements, self.group_weight, self.group_size,
+            self.occ_target,
         ) = _static(crystal, sites, valence)
         c = contacts
         self.bonded = c.bonded
@@ -375,7 +389,7 @@ class _Context:
                 valid = False
                 note = f"{self.sym_of_atom[int(np.flatnonzero(lonely)[0])]} would be a cation without anion neighbours"
 
-        closure = self._close(role, per, aa, ca, cc_any, residual * n_anion + cc_e, n_anion)
+        closure = self._close(_Split(anion_z, role, aa, ca, per, cc_any), residual * n_anion + cc_e, n_anion)
         cations = [s for s in self.present if s not in anions]
         return Count(
             anions=list(anions),
@@ -400,10 +414,11 @@ class _Context:
         )
 
     # -- closing the count -------------------------------------------------
-    def _pi_capacity(self, role, aa, per) -> tuple[float, float]:
+    def _pi_capacity(self, split: _Split) -> tuple[float, float]:
         """Electrons that pi bonding could supply: 1 per planar three-bonded
         anion, and 2 per extra bond order at short anion-anion contacts
         between other anions."""
+        role, aa, per = split.role, split.aa, split.per
         if not aa.any():
             return 0.0, 0.0  # no anion has an anion neighbour
         c = self.contacts
@@ -431,13 +446,13 @@ class _Context:
         short = 2.0 * float((bw * extra)[usable].sum())
         return short, planar
 
-    def _saturated(self, role, ca) -> np.ndarray:
+    def _saturated(self, split: _Split) -> np.ndarray:
         """Cations with four or more short, near-equal bonds to anions (a
         tetrahedral framework atom): no room for a lone pair."""
         n = self.crystal.natoms
-        short = ca & (self.contacts.ratio[self.bonded] <= SATURATED_RATIO)
+        short = split.ca & (self.contacts.ratio[self.bonded] <= SATURATED_RATIO)
         i, j = self.bi[short], self.bj[short]
-        out = ~role & (np.bincount(i, minlength=n) + np.bincount(j, minlength=n) >= 4)
+        out = ~split.role & (np.bincount(i, minlength=n) + np.bincount(j, minlength=n) >= 4)
         if out.any():
             ends = np.concatenate([i, j])
             dd = np.concatenate([self.bd[short], self.bd[short]])
@@ -448,17 +463,17 @@ class _Context:
             out &= hi <= lo * 1.05
         return out
 
-    def _close(self, role, per, aa, ca, cc_any: bool, keep_needed: float, n_anion: float) -> Closure:
+    def _close(self, split: _Split, keep_needed: float, n_anion: float) -> Closure:
         """Find kept electrons per cation group (lone pairs, d electrons,
         cation-cation bonds) and pi electrons that make the count close."""
         tol = max(TOL * n_anion, 0.02)
-        options = self._group_options(role, per, ca, cc_any)
+        options = self._group_options(split)
         totals, top = _reachable(options, keep_needed - tol, keep_needed + tol)
         pi_short = pi_planar = 0.0
         best = _match(totals, keep_needed, tol)
         pi = 0.0
         if best is None and keep_needed < tol + top:
-            pi_short, pi_planar = self._pi_capacity(role, aa, per)
+            pi_short, pi_planar = self._pi_capacity(split)
             cap = pi_short + pi_planar
             steps = int(math.floor(cap + 1e-6))
             totals, _ = _reachable(options, keep_needed + min(1.0, cap) - tol, keep_needed + cap + tol)
@@ -477,21 +492,19 @@ class _Context:
         from_planar = min(pi, pi_planar)
         return Closure(True, keep, pi, pi - from_planar, from_planar, mixed, cost)
 
-    def _group_options(self, role, per, ca, cc_any: bool) -> tuple:
+    def _group_options(self, split: _Split) -> tuple:
         """Per cation group: (group index, weight, ((kept electrons per atom, cost), ...))."""
         out = []
-        go = self.group_of
+        go, per, cc_any = self.group_of, split.per, split.cc_any
         ng = len(self.groups)
-        has_anion = (np.bincount(go[role], minlength=ng) > 0).tolist()
         ccb_all = None
         if cc_any and np.array_equal(per, np.rint(per)):
             # Whole bond counts: any order of summation gives np.mean's value.
             ccb_all = np.bincount(go, weights=per, minlength=ng) / self.group_size
         all_saturated = None
-        for g, (_site, zz) in enumerate(self.groups):
-            if has_anion[g]:
+        for g, (zz, sym, block) in enumerate(self.group_elements):
+            if zz in split.anion_z:
                 continue
-            sym, block = _element_facts(zz)[:2]
             w = self.group_weight[g]
             # cation-cation bonds per atom (none without a cation-cation bond)
             if not cc_any:
@@ -504,7 +517,7 @@ class _Context:
             saturated = False
             if overridden or block == "p":
                 if all_saturated is None:
-                    all_saturated = np.bincount(go[~self._saturated(role, ca)], minlength=ng) == 0
+                    all_saturated = np.bincount(go[~self._saturated(split)], minlength=ng) == 0
                 saturated = bool(all_saturated[g])
             out.append((g, w, _kept_options(zz, ccb, overridden, saturated)))
         return tuple(out)
