@@ -139,15 +139,13 @@ def _references(ratio, i, j, numbers, usable):
     ki = i * ne + code[j]
     kj = j * ne + code[i]
     n_atoms = code.size
-    ru, iu, ju, kiu, kju = ratio, i, j, ki, kj
+    ru, kiu, kju = ratio, ki, kj
     if not usable.all():
-        ru, iu, ju, kiu, kju = ratio[usable], i[usable], j[usable], ki[usable], kj[usable]
-    best = np.full(n_atoms * ne, np.inf)
+        ru, kiu, kju = ratio[usable], ki[usable], kj[usable]
+    best = np.full(n_atoms * ne, np.inf)  # per atom and partner element
     np.minimum.at(best, kiu, ru)
     np.minimum.at(best, kju, ru)
-    nearest = np.full(n_atoms, np.inf)
-    np.minimum.at(nearest, iu, ru)
-    np.minimum.at(nearest, ju, ru)
+    nearest = best.reshape(n_atoms, ne).min(axis=1)
     return np.minimum(best[ki], best[kj]), np.minimum(nearest[i], nearest[j])
 
 
