@@ -293,12 +293,16 @@ class _Context:
             changed = False
             an_z = {nums[a] for a in anions}
             for a, b in pairs:
-                for x, y in ((a, b), (b, a)):
-                    if x in an_z and y not in an_z:
-                        if capable[y] and abs(en[x] - en[y]) < 0.5:
-                            anions.append(syms[y])
-                            an_z.add(y)
-                            changed = True
+                if a in an_z and b not in an_z:
+                    y = b
+                elif b in an_z and a not in an_z:
+                    y = a
+                else:
+                    continue
+                if capable[y]:
+                    anions.append(syms[y])
+                    an_z.add(y)
+                    changed = True
         # Anion-capable elements with no bond to any anion are isolated anions
         # (Cl- beside water molecules), not cations.
         is_anion = np.zeros(128, dtype=bool)
