@@ -201,7 +201,7 @@ def count(
     return c
 
 
-# Electrons that complete the shell, by atomic number.
+# target() by atomic number: electrons that complete the shell.
 _TARGET_BY_Z = np.full(128, 8.0)
 _TARGET_BY_Z[[1, 2]] = 2.0
 _TARGET_BY_Z.setflags(write=False)
@@ -221,8 +221,8 @@ def _static(crystal: Crystal, sites: Sites, valence: dict[str, int]) -> tuple:
     if last is not None and last[0] == key:
         return last[1]
     syms = elements.symbols()
-    sym_of_atom = [syms[k] for k in z.tolist()]
-    present = sorted(set(sym_of_atom))
+    zset = set(z.tolist())
+    present = sorted(syms[k] for k in zset)
     val = elements.valence_by_z()
     if valence:
         val = val.copy()
@@ -232,8 +232,8 @@ def _static(crystal: Crystal, sites: Sites, valence: dict[str, int]) -> tuple:
     capable_atom = elements.capable_by_z()[z]
     # Atoms that are not electropositive (the only cations that may bond to each other).
     not_ep_atom = ~elements.electropositive_by_z()[z]
-    capable_z = frozenset(z[capable_atom].tolist())
-    not_ep_z = frozenset(z[not_ep_atom].tolist())
+    capable_z = frozenset(k for k in zset if elements.capable_by_z()[k])
+    not_ep_z = frozenset(k for k in zset if not elements.electropositive_by_z()[k])
     # Groups: one per (site, element), in order of site, then element.
     gkey = (site.astype(np.int64) * 128 + z).tolist()
     uniq = sorted(set(gkey))
@@ -247,7 +247,7 @@ def _static(crystal: Crystal, sites: Sites, valence: dict[str, int]) -> tuple:
     for arr in (capable_atom, not_ep_atom, group_of, group_size, occ_target):
         arr.setflags(write=False)
     out = (
-        sym_of_atom, present, electrons, capable_atom, capable_z, not_ep_atom, not_ep_z,
+        present, electrons, capable_atom, capable_z, not_ep_atom, not_ep_z,
         group_of, groups, group_elements, group_weight, group_size, occ_target,
     )
     _LOCAL.static = (key, out)
@@ -263,7 +263,7 @@ class _Context:
         self.valence_override = valence
         self.occ = crystal.occupancy
         (
-            self.sym_of_atom, self.present, self.electrons, self.capable_atom, self.capable_z, self.not_ep_atom,
+            self.present, self.electrons, self.capable_atom, self.capable_z, self.not_ep_atom,
             self.not_ep_z, self.group_of, self.groups, self.group_elements, self.group_weight, self.group_size,
             self.occ_target,
         ) = _static(crystal, sites, valence)
@@ -391,7 +391,8 @@ class _Context:
             lonely = ~role & (dcnt == 0) & self.capable_atom
             if lonely.any():
                 valid = False
-                note = f"{self.sym_of_atom[int(np.flatnonzero(lonely)[0])]} would be a cation without anion neighbours"
+                sym = elements.symbols()[int(z[np.flatnonzero(lonely)[0]])]
+                note = f"{sym} would be a cation without anion neighbours"
 
         closure = self._close(_Split(anion_z, role, aa, ca, per, cc_any), residual * n_anion + cc_e, n_anion)
         cations = [s for s in self.present if s not in anions]
