@@ -240,7 +240,8 @@ def _static(crystal: Crystal, sites: Sites, valence: dict[str, int]) -> tuple:
     index = {k: g for g, k in enumerate(uniq)}
     group_of = np.array([index[k] for k in gkey], dtype=np.intp)
     groups = [(k // 128, k % 128) for k in uniq]
-    group_elements = [(zz, *_element_facts(zz)[:2]) for _site, zz in groups]  # (Z, symbol, block)
+    facts = {k: (k, *_element_facts(k)[:2]) for k in zset}
+    group_elements = [facts[zz] for _site, zz in groups]  # (Z, symbol, block)
     group_weight = np.bincount(group_of, weights=occ, minlength=len(uniq)).tolist()
     group_size = np.bincount(group_of, minlength=len(uniq))
     occ_target = occ * _TARGET_BY_Z[z]
