@@ -267,6 +267,13 @@ class _Worker:
         self.done = 0
 
 
+# Entries a worker process checks before it is replaced by a fresh one: what
+# a long-lived process accumulates (ctypes array types that vesin's wrapper
+# makes for every new number of pairs, about 4 kB each and never freed;
+# allocator fragmentation) stays bounded however long the scan.
+RENEW_AFTER = 20000
+
+
 class _Processes:
     """A pool of worker processes, each fed its own queue of chunks, so that
     the main process always knows which entry a worker is busy with and can
@@ -314,6 +321,10 @@ class _Processes:
 
     def fill(self, take: Callable[[], Entry | None]) -> None:
         for w in sorted(self.workers, key=lambda w: len(w.out)):
+            if w.done >= RENEW_AFTER:
+                if w.out:
+                    continue  # gets no more work; renewed once it has answered
+                w = self._renew(w)
             while len(w.out) + self.chunk <= self.limit:
                 chunk = _take_chunk(lambda: self.retry.popleft() if self.retry else take(), self.chunk)
                 if not chunk:
@@ -399,6 +410,21 @@ class _Processes:
             raise RuntimeError("worker processes keep stopping without finishing any entry; "
                                "run with --executor inline to see the error")
         self.workers[self.workers.index(w)] = self._spawn()
+
+    def _renew(self, w: _Worker) -> _Worker:
+        """Replace an idle worker that has done its share with a fresh one."""
+        try:
+            w.tasks.put(None)
+        except (OSError, ValueError):
+            pass
+        w.proc.join(5)
+        if w.proc.is_alive():
+            w.proc.kill()
+            w.proc.join()
+        self._discard(w)
+        fresh = self._spawn()
+        self.workers[self.workers.index(w)] = fresh
+        return fresh
 
     def _discard(self, w: _Worker) -> None:
         for fd in (w.conn.fileno(), w.proc.sentinel):

@@ -444,6 +444,36 @@ def _store_count(path: Path) -> int:
         return 0
 
 
+def test_workers_are_renewed_on_long_scans(tmp_path, monkeypatch):
+    """A worker process is replaced after RENEW_AFTER entries (so what a
+    long-lived process accumulates stays bounded); no entry is lost or
+    checked twice on the way, and the rows are those of one-at-a-time checks."""
+    import bondcheck.scan as scan_mod
+
+    monkeypatch.setattr(scan_mod, "RENEW_AFTER", 5)
+    spawned = []
+    spawn = scan_mod._Processes._spawn
+
+    def counting(self):
+        w = spawn(self)
+        spawned.append(w.proc.pid)
+        return w
+
+    monkeypatch.setattr(scan_mod._Processes, "_spawn", counting)
+    col = tmp_path / "col"
+    _copies(col, 36)
+    got = _by_entry(Scanner([str(col)], store=None, jobs=2, chunk=2).rows())
+    assert len(got) == 36 and all(r["status"] == "ok" for r in got.values())
+    # two at the start, then a fresh one whenever a worker has done 5 or more
+    # and answered what it had in hand (up to two chunks of 2): at least 4 in all
+    assert len(set(spawned)) >= 4
+    fast = bondcheck.Options(symmetry=False)
+    for i in (0, 1, 2, 3, 35):  # SiC, MoS2, SiO2, CoAsS, CoAsS
+        d = bondcheck.check(col / f"lx7-{i:04d}.cif", options=fast).to_dict()
+        r = got[str(col / f"lx7-{i:04d}.cif")]
+        assert (r["formula"], r["verdict"], r["residual"]) == (d["formula"], d["verdict"], d["residual"])
+
+
 @pytest.fixture(scope="module")
 def copies(tmp_path_factory):
     """Distinct real CIFs, enough for an uninterrupted scan to take a few
