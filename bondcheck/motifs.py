@@ -78,9 +78,32 @@ def periodic_components(n: int, bi, bj, shift) -> tuple[np.ndarray, dict[int, in
                     d = (o[0] - bx, o[1] - by, o[2] - bz)
                     if d != (0, 0, 0):
                         cycles.add(d)
-        dims[cid] = int(np.linalg.matrix_rank(np.array(sorted(cycles)))) if cycles else 0
+        dims[cid] = _rank(cycles)
         cid += 1
     return np.array(comp, dtype=np.int64), dims
+
+
+def _rank(vectors: set[tuple[int, int, int]]) -> int:
+    """Rank of a set of nonzero integer 3-vectors, exactly: 0 for none, 1 when
+    all are parallel to the first, 3 when one leaves the plane of the first
+    two independent ones, else 2."""
+    if not vectors:
+        return 0
+    it = iter(vectors)
+    ax, ay, az = next(it)
+    normal = None
+    for bx, by, bz in it:
+        n = (ay * bz - az * by, az * bx - ax * bz, ax * by - ay * bx)
+        if n != (0, 0, 0):
+            normal = n
+            break
+    if normal is None:
+        return 1
+    nx, ny, nz = normal
+    for vx, vy, vz in vectors:
+        if nx * vx + ny * vy + nz * vz != 0:
+            return 3
+    return 2
 
 
 def formula(numbers) -> str:
@@ -125,6 +148,9 @@ def anion_components(crystal, contacts, count) -> list[Component]:
     out = []
     for cid in range(ncomp):
         m = members[cid]
+        if len(m) == 1 and not edges[cid]:  # the common case: a lone anion
+            out.append(Component([atom_list[m[0]]], 0, "isolated anion", syms[z_list[m[0]]], 0, 0.0))
+            continue
         d = [deg[k] for k in m]
         text = "".join(f"{syms[z]}{n if n > 1 else ''}" for z, n in sorted(per_z[cid].items()))
         comp = Component([atom_list[k] for k in m], dims[cid], "", text, edges[cid], sum(d) / len(d))
