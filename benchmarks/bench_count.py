@@ -6,9 +6,9 @@
 
 record: runs bondcheck.api.check_crystal with Options(symmetry=False) on the
 first N files of ../shared/corpus/mp-relaxed (or --corpus FOLDER; sorted by
-name) and keeps every
-call of bondcheck.count.count (from the check itself and from diagnose's
-variants) with its arguments and its result, in call order, in a pickle.
+name) and keeps every call of bondcheck.count.count (from the check itself and
+from diagnose's variants) with its arguments and its result, in call order, in
+a pickle. Record with the count code whose results are the reference.
 
 time: replays the calls in order (the count stage remembers the last
 structure, so the order matters) and prints the CPU time (time.process_time)
@@ -16,9 +16,12 @@ per call and per structure, best of --repeat runs.
 
 verify: replays the calls once and compares every result, field by field
 (arrays exactly, floats exactly), with the recorded one; prints the number of
-differing calls and the first few differences.
+differing calls and the first few differences. A check between versions of
+the count stage; benchmarks/compare_results.py stays the guard for whole
+results.
 
-Skips with a message when the corpus is absent.
+Skips with a message when the corpus (record) or the pickle (time, verify) is
+absent.
 """
 from __future__ import annotations
 
@@ -29,8 +32,6 @@ import time
 from pathlib import Path
 
 import numpy as np
-
-sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 CORPUS = Path(__file__).resolve().parents[1] / ".." / "shared" / "corpus"
 
@@ -72,6 +73,9 @@ def record(out: str, limit: int, folder: str) -> None:
 
 
 def _load(path: str):
+    if not Path(path).exists():
+        print(f"no recorded calls at {path} (run record first): skipped")
+        sys.exit(0)
     with open(path, "rb") as fh:
         return pickle.load(fh)
 
