@@ -355,8 +355,7 @@ def _metallic(case: Case) -> list[F.Finding]:
     if coord.size and float(np.mean(coord)) >= 6:
         return [F.Metallic(rank=0.7, why=f"anions have {float(np.mean(coord)):.1f} anion neighbours on average: a close-packed metallic arrangement", evidence=ev)]
     groups = {elements.table()[elements.symbols()[k]]["group"] for k in np.unique(cr.numbers[an])}
-    syms = elements.symbols()
-    w_d = float(np.sum(cr.occupancy[[k for k in np.flatnonzero(~an) if elements.block(syms[cr.numbers[k]]) == "d"]]))
+    w_d = float(np.sum(cr.occupancy[~an & elements.d_block_by_z()[cr.numbers]]))
     if max(groups) <= 14 and c.residual > 0 and w_d > 0:
         return [F.Metallic(rank=0.7, why="group 13-14 anions with transition metals and electrons left over: an intermetallic", evidence=ev)]
     if c.n_anion and w_d / c.n_anion >= 2:

@@ -98,6 +98,11 @@ def block(sym: str) -> str:
     return table()[sym]["block"]
 
 
+@lru_cache(maxsize=1)
+def d_block_by_z() -> np.ndarray:
+    return _per_z(lambda sym: block(sym) == "d", bool)
+
+
 def is_electropositive(sym: str) -> bool:
     """s-block metals (not H), group 3 and the f block: atoms that give their
     electrons away and do not bond to each other."""
