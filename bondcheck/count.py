@@ -161,7 +161,7 @@ def count(
     valence = valence or {}
     ctx = _Context(crystal, contacts, sites, valence)
     if anions:
-        missing = [a for a in anions if a not in ctx.present]
+        missing = [a for a in anions if a not in ctx.static.present]
         if missing:
             from .record import StructureError
 
@@ -207,10 +207,28 @@ _TARGET_BY_Z[[1, 2]] = 2.0
 _TARGET_BY_Z.setflags(write=False)
 
 
-def _static(crystal: Crystal, sites: Sites, valence: dict[str, int]) -> tuple:
-    """The quantities of `_Context` that depend on the atoms and sites alone,
-    remembered for the last structure (per thread): the checks of one
-    structure count it several times with other contacts."""
+@dataclass(slots=True)
+class _Static:
+    """The quantities of a count that depend on the atoms and sites alone."""
+
+    present: list[str]  # element symbols, sorted
+    electrons: float  # valence electrons per cell
+    capable_atom: np.ndarray  # per atom: the element can be an anion
+    capable_z: frozenset[int]  # atomic numbers of such elements
+    not_ep_atom: np.ndarray  # per atom: the element is not electropositive
+    not_ep_z: frozenset[int]  # atomic numbers of such elements
+    group_of: np.ndarray  # per atom: group index
+    groups: list[tuple[int, int]]  # (site, Z) per group
+    group_elements: list[tuple[int, str, str]]  # (Z, symbol, block) per group
+    group_weight: list[float]  # occupancy per group
+    group_size: np.ndarray  # atoms per group
+    occ_target: np.ndarray  # per atom: occupancy times the shell target
+
+
+def _static(crystal: Crystal, sites: Sites, valence: dict[str, int]) -> _Static:
+    """The `_Static` of a structure, remembered for the last structure (per
+    thread): the checks of one structure count it several times with other
+    contacts."""
     z, occ, site = crystal.numbers, crystal.occupancy, sites.site
     # The arrays' bytes (with their types) and the valence overrides.
     key = (
@@ -241,13 +259,13 @@ def _static(crystal: Crystal, sites: Sites, valence: dict[str, int]) -> tuple:
     group_of = np.array([index[k] for k in gkey], dtype=np.intp)
     groups = [(k // 128, k % 128) for k in uniq]
     facts = {k: (k, *_element_facts(k)[:2]) for k in zset}
-    group_elements = [facts[zz] for _site, zz in groups]  # (Z, symbol, block)
+    group_elements = [facts[zz] for _site, zz in groups]
     group_weight = np.bincount(group_of, weights=occ, minlength=len(uniq)).tolist()
     group_size = np.bincount(group_of, minlength=len(uniq))
     occ_target = occ * _TARGET_BY_Z[z]
     for arr in (capable_atom, not_ep_atom, group_of, group_size, occ_target):
         arr.setflags(write=False)
-    out = (
+    out = _Static(
         present, electrons, capable_atom, capable_z, not_ep_atom, not_ep_z,
         group_of, groups, group_elements, group_weight, group_size, occ_target,
     )
@@ -263,11 +281,7 @@ class _Context:
         self.contacts = contacts
         self.valence_override = valence
         self.occ = crystal.occupancy
-        (
-            self.present, self.electrons, self.capable_atom, self.capable_z, self.not_ep_atom,
-            self.not_ep_z, self.group_of, self.groups, self.group_elements, self.group_weight, self.group_size,
-            self.occ_target,
-        ) = _static(crystal, sites, valence)
+        self.static = _static(crystal, sites, valence)
         c = contacts
         self.bonded = c.bonded
         self.bi, self.bj = c.i[c.bonded], c.j[c.bonded]
@@ -309,7 +323,7 @@ class _Context:
         is_anion = np.zeros(128, dtype=bool)
         is_anion[list(an_z)] = True
         bonded_to_anion = set(zj[is_anion[zi]].tolist()) | set(zi[is_anion[zj]].tolist())
-        for sy in self.present:
+        for sy in self.static.present:
             zz = nums[sy]
             if sy not in anions and elements.can_be_anion(sy) and zz not in bonded_to_anion:
                 anions.append(sy)
@@ -337,14 +351,14 @@ class _Context:
         ca = rbi != rbj
         # Cation-cation bonds: between non-electropositive cations, and only
         # as long as the bridging test below allows.
-        if self.not_ep_z <= anion_z:
+        if self.static.not_ep_z <= anion_z:
             cc = np.zeros(len(bi), dtype=bool)
             cc_any = False
         else:
-            may_bond = ~role & self.not_ep_atom
+            may_bond = ~role & self.static.not_ep_atom
             cc = may_bond[bi] & may_bond[bj]
             cc_any = bool(cc.any())
-        lonely_possible = not self.capable_z <= anion_z
+        lonely_possible = not self.static.capable_z <= anion_z
         if cc_any or lonely_possible:
             ica, jca = bi[ca], bj[ca]
             dcnt = np.bincount(ica, minlength=n) + np.bincount(jca, minlength=n)
@@ -357,10 +371,10 @@ class _Context:
             cc_any = bool(cc.any())
 
         n_anion = float(occ[role].sum())
-        shell = float(self.occ_target[role].sum())
+        shell = float(self.static.occ_target[role].sum())
         aa_ends = 2.0 * float(bw[aa].sum())
         cc_e = 2.0 * float(bw[cc].sum()) if cc_any else 0.0
-        vec = self.electrons / n_anion
+        vec = self.static.electrons / n_anion
         mean_target = shell / n_anion
         aa_obs = aa_ends / n_anion
         cc_obs = cc_e / n_anion
@@ -389,20 +403,20 @@ class _Context:
         if valid and lonely_possible:
             # An element that could be an anion, made a cation without a
             # single bond to an anion (Cl in a hydrate split on O alone).
-            lonely = ~role & (dcnt == 0) & self.capable_atom
+            lonely = ~role & (dcnt == 0) & self.static.capable_atom
             if lonely.any():
                 valid = False
                 sym = elements.symbols()[int(z[np.flatnonzero(lonely)[0]])]
                 note = f"{sym} would be a cation without anion neighbours"
 
         closure = self._close(_Split(anion_z, role, aa, ca, per, cc_any), residual * n_anion + cc_e, n_anion)
-        cations = [s for s in self.present if s not in anions]
+        cations = [s for s in self.static.present if s not in anions]
         return Count(
             anions=list(anions),
             cations=cations,
             reason=why,
             n_anion=n_anion,
-            electrons=self.electrons,
+            electrons=self.static.electrons,
             vec_anion=vec,
             aa_predicted=mean_target - vec,
             aa_observed=aa_obs,
@@ -412,8 +426,8 @@ class _Context:
             aa_bonds=per,
             cc_bond=cc,
             aa_bond=aa,
-            groups=self.groups,
-            group_of=self.group_of,
+            groups=self.static.groups,
+            group_of=self.static.group_of,
             closure=closure,
             valid=valid,
             note=note,
@@ -501,17 +515,17 @@ class _Context:
     def _group_options(self, split: _Split) -> tuple:
         """Per cation group: (group index, weight, ((kept electrons per atom, cost), ...))."""
         out = []
-        go, per, cc_any = self.group_of, split.per, split.cc_any
-        ng = len(self.groups)
+        go, per, cc_any = self.static.group_of, split.per, split.cc_any
+        ng = len(self.static.groups)
         ccb_all = None
         if cc_any and np.array_equal(per, np.rint(per)):
             # Whole bond counts: any order of summation gives np.mean's value.
-            ccb_all = np.bincount(go, weights=per, minlength=ng) / self.group_size
+            ccb_all = np.bincount(go, weights=per, minlength=ng) / self.static.group_size
         all_saturated = None
-        for g, (zz, sym, block) in enumerate(self.group_elements):
+        for g, (zz, sym, block) in enumerate(self.static.group_elements):
             if zz in split.anion_z:
                 continue
-            w = self.group_weight[g]
+            w = self.static.group_weight[g]
             # cation-cation bonds per atom (none without a cation-cation bond)
             if not cc_any:
                 ccb = 0.0
@@ -532,10 +546,11 @@ class _Context:
 @lru_cache(maxsize=4096)
 def _kept_options(z: int, ccb: float, overridden: bool, saturated: bool) -> tuple:
     """((kept electrons per atom, cost), ...) for a cation group of element z
-    with ccb cation-cation bonds per atom. A p-block cation (or one whose
-    valence the user set) keeps its lone pair on top of its cation-cation
-    bonds, none when all its atoms are saturated; other cations keep at least
-    the electrons of their cation-cation bonds."""
+    with ccb cation-cation bonds per atom. A p-block cation keeps its
+    cation-cation bonds and may keep a lone pair (not when all its atoms are
+    saturated); one whose valence the user set keeps its cation-cation bonds
+    alone; other cations keep at least the electrons of their cation-cation
+    bonds."""
     _sym, block, _valence, keep = _element_facts(z)
     opts = {0: 0} if overridden else keep
     if block == "p" or overridden:
