@@ -158,8 +158,9 @@ def main(argv=None) -> int:
     diffs = compare(old, results, args.count_only, args.fast)
     for line in diffs[: args.show]:
         print(line)
-    n_entries = len({line.split(":")[0].split(".")[0].split("[")[0] for line in diffs})
-    print(f"{len(diffs)} differences in about {n_entries} entries over {len(results)} results")
+    # a difference reads 'PATH.cif.FIELD...: old != new' (every file of the set is a CIF)
+    n_entries = len({line.split(".cif", 1)[0] for line in diffs})
+    print(f"{len(diffs)} differences in {n_entries} files over {len(results)} results")
     return 1 if diffs else 0
 
 
