@@ -61,6 +61,10 @@ def periodic_components(n: int, bi, bj, shift) -> tuple[np.ndarray, dict[int, in
         if comp[start] >= 0:
             continue
         comp[start] = cid
+        if not adj[start]:  # a lone atom: a component of its own, 0D
+            dims[cid] = 0
+            cid += 1
+            continue
         offset[start] = (0, 0, 0)
         stack = [start]
         cycles = set()
@@ -116,16 +120,20 @@ def formula(numbers) -> str:
 def anion_components(crystal, contacts, count) -> list[Component]:
     """Connected components of the anion-anion bond graph (fully occupied
     view: every entry is a node)."""
-    role = count.role
-    anions = np.flatnonzero(role)
+    anions = np.flatnonzero(count.role)
     if anions.size == 0:
         return []
+    syms = elements.symbols()
+    atom_list = anions.tolist()
+    z_list = crystal.numbers[anions].tolist()
+    aa = count.aa_bond
+    if not aa.any():  # no anion-anion bond: every anion is a component of its own
+        return [Component([a], 0, "isolated anion", syms[z], 0, 0.0) for a, z in zip(atom_list, z_list)]
     index = -np.ones(crystal.natoms, dtype=np.int64)
     index[anions] = np.arange(anions.size)
-    b = contacts.bonded
-    aa = count.aa_bond
-    bi, bj = index[contacts.i[b][aa]], index[contacts.j[b][aa]]
-    comp_of, dims = periodic_components(anions.size, bi, bj, contacts.shift[b][aa])
+    sel = np.flatnonzero(contacts.bonded)[aa]  # the anion-anion bonds among all contacts
+    bi, bj = index[contacts.i[sel]], index[contacts.j[sel]]
+    comp_of, dims = periodic_components(anions.size, bi, bj, contacts.shift[sel])
     ncomp = len(dims)
     deg = [0] * anions.size
     edges = [0] * ncomp
@@ -136,9 +144,6 @@ def anion_components(crystal, contacts, count) -> list[Component]:
         edges[comp_list[i]] += 1
     # Members and formula of every component (counts per element in
     # atomic-number order).
-    syms = elements.symbols()
-    atom_list = anions.tolist()
-    z_list = crystal.numbers[anions].tolist()
     members: list[list[int]] = [[] for _ in range(ncomp)]
     per_z: list[dict[int, int]] = [{} for _ in range(ncomp)]
     for k, cid in enumerate(comp_list):
