@@ -75,9 +75,14 @@ class Contacts:
     # contacts cheaply.
     references: tuple | None = None
 
-    def vectors(self, crystal: Crystal) -> np.ndarray:
-        """Cartesian vector from atom i to the image of atom j."""
-        fr = crystal.frac[self.j] + self.shift - crystal.frac[self.i]
+    def vectors(self, crystal: Crystal, select=None) -> np.ndarray:
+        """Cartesian vector from atom i to the image of atom j, for every
+        contact or for those that select picks (a boolean mask or an index
+        array over the contacts), in the selection's order."""
+        i, j, shift = self.i, self.j, self.shift
+        if select is not None:
+            i, j, shift = i[select], j[select], shift[select]
+        fr = crystal.frac[j] + shift - crystal.frac[i]
         return fr @ crystal.cell
 
 

@@ -49,10 +49,14 @@ def _fmt(x: float) -> str:
     return f"{x:.3g}" if abs(x - round(x)) > 1e-6 else str(int(round(x)))
 
 
-def _label(crystal: Crystal, atoms) -> str:
-    """Label of the first atom of a boolean mask or an index list."""
-    atoms = np.asarray(atoms)
-    return crystal.label(int(np.flatnonzero(atoms)[0]) if atoms.dtype == bool else int(atoms[0]))
+def _first_atoms(c: Count) -> list[int]:
+    """Index of the first atom of every group of a count (the atom whose
+    label names the group)."""
+    first = [-1] * len(c.groups)
+    for k, g in enumerate(c.group_of.tolist()):
+        if first[g] < 0:
+            first[g] = k
+    return first
 
 
 def diagnose(crystal, contacts, sites, c, fragile_sites, anions=None, valence=None, criterion=None):
@@ -88,7 +92,7 @@ def _diagnose(crystal, contacts, sites, c, fragile_sites, anions=None, valence=N
     case = Case(crystal, contacts, sites, c, anions, dict(valence or {}), criterion or Criterion(), list(fragile_sites))
     out: list[F.Finding] = []
     syms = elements.symbols()
-    present = sorted({syms[z] for z in crystal.numbers})
+    present = sorted({syms[z] for z in crystal.numbers.tolist()})
     if c is None:
         out.append(F.NothingToCount(why=f"no element of {', '.join(present)} can take the anion role: a metal or intermetallic"))
         out.append(F.Metallic(why="only metals are present"))
@@ -119,6 +123,10 @@ def _diagnose(crystal, contacts, sites, c, fragile_sites, anions=None, valence=N
         out.extend(_cutoff_range(case, CONSISTENT))
         return CONSISTENT, out, case.components
 
+    # The criterion range before the probes: the element swaps count other
+    # structures, and count() remembers only the last structure's static
+    # quantities.
+    cutoff = _cutoff_range(case, MISMATCH)
     found: list[F.Finding] = []
     found += clusters
     metallic = _metallic(case)
@@ -136,9 +144,7 @@ def _diagnose(crystal, contacts, sites, c, fragile_sites, anions=None, valence=N
     else:
         found.append(F.ElectronDeficit(rank=0.2, e=_fmt(round(-c.residual, 3)), evidence={"residual": round(c.residual, 3)}))
     found.sort(key=lambda f: -f.rank)
-    out = found + out
-    out.extend(_cutoff_range(case, MISMATCH))
-    return MISMATCH, out, case.components
+    return MISMATCH, found + out + cutoff, case.components
 
 
 def _occupancy(case: Case, partial: np.ndarray) -> F.Finding:
@@ -182,6 +188,7 @@ def _explanations(case: Case) -> list[F.Finding]:
     out: list[F.Finding] = []
     syms = elements.symbols()
     cl = c.closure
+    first = _first_atoms(c)
     lone, dstates, lanth = [], [], []
     for g, k in cl.keep.items():
         sym = syms[c.groups[g][1]]
@@ -191,13 +198,13 @@ def _explanations(case: Case) -> list[F.Finding]:
             nonbond = k - float(np.mean(c.aa_bonds[atoms]))  # electrons kept beyond cation-cation bonds
             if nonbond > 1e-6:
                 w = float(np.sum(crystal.occupancy[atoms]))
-                lone.append((_label(crystal, atoms), sym, w * nonbond, int(np.flatnonzero(atoms)[0])))
+                lone.append((crystal.label(first[g]), sym, w * nonbond, first[g]))
         elif blk == "d" or sym in elements.DLIKE_ACTINIDES:
             if k > 1e-6:
                 v = case.valence.get(sym, elements.valence(sym))
-                dstates.append((_label(crystal, c.group_of == g), sym, v - k, k))
+                dstates.append((crystal.label(first[g]), sym, v - k, k))
         elif sym in elements.DIVALENT_LANTHANIDES and k > 1e-6:
-            lanth.append(_label(crystal, c.group_of == g))
+            lanth.append(crystal.label(first[g]))
     if lone:
         n = sum(x[2] for x in lone)
         who = ", ".join(f"{lab} ({s})" for lab, s, _, _ in lone)
@@ -222,7 +229,7 @@ def _explanations(case: Case) -> list[F.Finding]:
         )
     if lanth:
         out.append(F.DivalentLanthanide(sites=lanth, who=", ".join(lanth)))
-    if np.any(c.cc_bond):
+    if c.cc_bond.any():
         pairs, w = _pairs(case, c.cc_bond)
         out.append(
             F.CationCationBonds(
@@ -237,18 +244,17 @@ def _explanations(case: Case) -> list[F.Finding]:
     if cl.pi_from_planar > 0:
         out.append(F.PiBonds(n=_fmt(cl.pi_from_planar), evidence={"planar_sites_per_cell": cl.pi_from_planar}))
     for g in cl.mixed_groups:
-        atoms = c.group_of == g
+        lab = crystal.label(first[g])
         sym = syms[c.groups[g][1]]
-        out.append(F.MixedValence(sites=[_label(crystal, atoms)], who=_label(crystal, atoms),
-                                  avg=f"{elements.valence(sym) - cl.keep[g]:+.2f}"))
+        out.append(F.MixedValence(sites=[lab], who=lab, avg=f"{elements.valence(sym) - cl.keep[g]:+.2f}"))
     return out
 
 
 def _pairs(case: Case, mask, shortest: int | None = None):
     crystal, contacts = case.crystal, case.contacts
     syms = elements.symbols()
-    b = contacts.bonded
-    bi, bj, dd, rat, w = contacts.i[b][mask], contacts.j[b][mask], contacts.d[b][mask], contacts.ratio[b][mask], contacts.weight[b][mask]
+    sel = np.flatnonzero(contacts.bonded)[mask]  # mask is over the bonded contacts
+    bi, bj, dd, rat, w = contacts.i[sel], contacts.j[sel], contacts.d[sel], contacts.ratio[sel], contacts.weight[sel]
     order = np.argsort(rat)
     if shortest:
         order = order[:shortest]
@@ -264,29 +270,25 @@ def _sign(ox: float) -> str:
     return f"{ox:+.2f}"
 
 
-def _neighbour_vectors(case: Case, atom: int, partner_mask=None) -> np.ndarray:
+def _outward(case: Case, atom: int, sel: np.ndarray) -> np.ndarray:
+    """Vectors from atom to its partners in the contacts sel (indices of
+    contacts that all involve atom)."""
     c = case.contacts
-    b = c.bonded.copy()
-    if partner_mask is not None:
-        b &= partner_mask
-    sel = b & ((c.i == atom) | (c.j == atom))
-    if not sel.any():
-        return np.zeros((0, 3))
-    sub = replace(c, i=c.i[sel], j=c.j[sel], shift=c.shift[sel])
-    v = sub.vectors(case.crystal)
-    flip = sub.i != atom
-    v[flip] *= -1
+    v = c.vectors(case.crystal, sel)
+    v[c.i[sel] != atom] *= -1
     return v
 
 
 def _centroid_offset(case: Case, atom: int) -> float | None:
+    """Distance from atom to the centroid of its bonded neighbours of the
+    other role (None with fewer than two)."""
     role = case.count.role
     c = case.contacts
     to_anion = role[c.i] != role[c.j]
-    v = _neighbour_vectors(case, atom, to_anion)
-    if v.shape[0] < 2:
+    sel = np.flatnonzero(c.bonded & to_anion & ((c.i == atom) | (c.j == atom)))
+    if sel.size < 2:
         return None
-    return float(np.linalg.norm(v.mean(axis=0)))
+    return float(np.linalg.norm(_outward(case, atom, sel).mean(axis=0)))
 
 
 # ---------------------------------------------------------------------------
@@ -332,7 +334,7 @@ def _clusters(case: Case) -> list[F.Finding]:
         verdict = f"a {cl.kind} count (closes)" if cl.kind != "none" else (
             f"no closo/nido/arachno count (closo needs {cl.expected['closo']})")
         f = F.DeficientCluster(
-            sites=sorted({_label(cr, [a]) for a in cl.atoms}),
+            sites=sorted({cr.label(a) for a in cl.atoms}),
             rank=1.0 if closes else 0.6,
             severity="info" if closes else "warning",
             n=len(group), formula=formula, pairs=_fmt(round(pairs, 2)), vertices=cl.vertices, verdict=verdict,
@@ -354,20 +356,20 @@ def _metallic(case: Case) -> list[F.Finding]:
     coord = c.aa_bonds[an]
     if coord.size and float(np.mean(coord)) >= 6:
         return [F.Metallic(rank=0.7, why=f"anions have {float(np.mean(coord)):.1f} anion neighbours on average: a close-packed metallic arrangement", evidence=ev)]
-    groups = {elements.table()[elements.symbols()[k]]["group"] for k in np.unique(cr.numbers[an])}
+    tab, syms = elements.table(), elements.symbols()
+    groups = {tab[syms[k]]["group"] for k in set(cr.numbers[an].tolist())}
     w_d = float(np.sum(cr.occupancy[~an & elements.d_block_by_z()[cr.numbers]]))
     if max(groups) <= 14 and c.residual > 0 and w_d > 0:
         return [F.Metallic(rank=0.7, why="group 13-14 anions with transition metals and electrons left over: an intermetallic", evidence=ev)]
     if c.n_anion and w_d / c.n_anion >= 2:
         return [F.Metallic(rank=0.7, why=f"metal-rich: {w_d / c.n_anion:.2g} transition-metal atoms per anion, bonded among themselves beyond what the count resolves", evidence=ev)]
-    # Many near-equidistant anion neighbours without a gap.
-    gaps = []
-    for s in np.unique(case.sites.site[an]):
-        k = int(case.sites.representative[s])
-        if c.aa_bonds[k] >= 5:
-            gaps.append(k)
-    if gaps and c.residual > 0:
-        return [F.Metallic(rank=0.45, why=f"{len(gaps)} anion site(s) with five or more anion neighbours: delocalised bonding", evidence=ev)]
+    # Many near-equidistant anion neighbours without a gap, and electrons left over.
+    if c.residual <= 0:
+        return []
+    rep = case.sites.representative
+    gaps = sum(1 for s in set(case.sites.site[an].tolist()) if c.aa_bonds[rep[s]] >= 5)
+    if gaps:
+        return [F.Metallic(rank=0.45, why=f"{gaps} anion site(s) with five or more anion neighbours: delocalised bonding", evidence=ev)]
     return []
 
 
@@ -375,8 +377,11 @@ def _polar_intermetallic(case: Case) -> list[F.Finding]:
     """Group 13-14 anions with electrons left over but no transition metal: a
     Zintl phase gone metallic, or a mistyped site; the probes still run."""
     c, cr = case.count, case.crystal
-    groups = {elements.table()[elements.symbols()[k]]["group"] for k in np.unique(cr.numbers[c.role])}
-    if max(groups) <= 14 and c.residual > 0:
+    if c.residual <= 0:
+        return []
+    tab, syms = elements.table(), elements.symbols()
+    groups = {tab[syms[k]]["group"] for k in set(cr.numbers[c.role].tolist())}
+    if max(groups) <= 14:
         return [F.Metallic(rank=0.5, why="the anions are group 13-14 elements with electrons left over: possibly a polar intermetallic",
                            evidence={"vec_anion": round(c.vec_anion, 3)})]
     return []
@@ -389,8 +394,9 @@ def _hypervalent(case: Case) -> list[F.Finding]:
     syms = elements.symbols()
     rad = elements.radii()
     out = []
-    aa_mask = np.zeros(case.contacts.i.size, dtype=bool)
-    aa_mask[np.flatnonzero(case.contacts.bonded)[c.aa_bond]] = True
+    contacts = case.contacts
+    aa = np.flatnonzero(contacts.bonded)[c.aa_bond]  # anion-anion bonds among the contacts
+    aa_i, aa_j = contacts.i[aa], contacts.j[aa]
     for s in np.unique(case.sites.site[c.role]):
         k = int(case.sites.representative[s])
         if not c.role[k]:
@@ -400,9 +406,10 @@ def _hypervalent(case: Case) -> list[F.Finding]:
         n = c.aa_bonds[k]
         if n <= allowed + 1e-6 or allowed < 0:
             continue
-        v = _neighbour_vectors(case, k, aa_mask)
-        if v.shape[0] < 2:
+        sel = aa[(aa_i == k) | (aa_j == k)]
+        if sel.size < 2:
             continue
+        v = _outward(case, k, sel)
         d = np.linalg.norm(v, axis=1)
         u = v / d[:, None]
         cosines = u @ u.T
@@ -417,13 +424,13 @@ def _hypervalent(case: Case) -> list[F.Finding]:
         if shape is None:
             continue
         # Pauling bond orders from lengths of the atom's anion-anion bonds.
-        partners = _partner_numbers(case, k, aa_mask)
+        partners = cr.numbers[np.where(contacts.i[sel] == k, contacts.j[sel], contacts.i[sel])]
         d1 = rad[cr.numbers[k]] + rad[partners]
         orders = 10.0 ** ((d1 - d) / PAULING_K)
         if float(np.mean(orders)) > 0.85:
             continue
         vsum = float(np.sum(orders))
-        lab = _label(cr, [k])
+        lab = cr.label(k)
         out.append(F.Hypervalent(
             sites=[lab], rank=0.96, who=f"{lab} ({sym})", n=_fmt(n), allowed=allowed, shape=shape, vsum=f"{vsum:.2f}",
             evidence={"distances_A": [round(x, 3) for x in sorted(d)], "bond_orders": [round(x, 3) for x in sorted(orders, reverse=True)],
@@ -432,18 +439,11 @@ def _hypervalent(case: Case) -> list[F.Finding]:
     return out
 
 
-def _partner_numbers(case: Case, atom: int, mask) -> np.ndarray:
-    c = case.contacts
-    sel = c.bonded & mask & ((c.i == atom) | (c.j == atom))
-    other = np.where(c.i[sel] == atom, c.j[sel], c.i[sel])
-    return case.crystal.numbers[other]
-
-
 def _oxidation_states(case: Case) -> list[F.Finding]:
     """Implied oxidation state of the d-block cations if they took the whole residual."""
     c, cr = case.count, case.crystal
     syms = elements.symbols()
-    tm = [k for k in np.flatnonzero(~c.role) if elements.block(syms[cr.numbers[k]]) == "d"]
+    tm = [k for k in np.flatnonzero(~c.role).tolist() if elements.block(syms[cr.numbers[k]]) == "d"]
     if not tm:
         return []
     w = float(np.sum(cr.occupancy[tm]))
@@ -468,7 +468,7 @@ def _oxidation_states(case: Case) -> list[F.Finding]:
         why = "outside its known range"
     else:
         return []
-    return [F.OddOxidationState(rank=0.55, sites=[_label(cr, [tm[0]])], who=el, ox=f"{ox:+.2f}", why=why,
+    return [F.OddOxidationState(rank=0.55, sites=[cr.label(tm[0])], who=el, ox=f"{ox:+.2f}", why=why,
                                 evidence={"implied_oxidation_state": round(ox, 3), "known_states": sorted(known)})]
 
 
@@ -482,23 +482,17 @@ def _recount(case: Case, crystal: Crystal, sites: Sites, contacts: Contacts | No
         return None
 
 
-def _swap_targets(z: int) -> list[int]:
-    syms = elements.symbols()
-    row = elements.table()[syms[z]]["row"]
-    out = []
-    for dz in (-1, 1):
-        t = z + dz
-        if not 1 <= t <= 103:
-            continue
-        rt = elements.table()[syms[t]]
-        if rt["row"] != row or rt["group"] == 18 or _is_noble(z):
-            continue
-        out.append(t)
-    return out
-
-
-def _is_noble(z: int) -> bool:
-    return elements.table()[elements.symbols()[z]]["group"] == 18
+def _swap_target(z: int, dz: int) -> int | None:
+    """Atomic number z + dz when it is an element of z's row and neither is a
+    noble gas, else None."""
+    t = z + dz
+    if not 1 <= t <= 103:
+        return None
+    tab, syms = elements.table(), elements.symbols()
+    rz, rt = tab[syms[z]], tab[syms[t]]
+    if rt["row"] != rz["row"] or rt["group"] == 18 or rz["group"] == 18:
+        return None
+    return t
 
 
 def _swaps(case: Case) -> list[F.Finding]:
@@ -518,24 +512,26 @@ def _swaps(case: Case) -> list[F.Finding]:
     order = sorted(range(len(c.groups)), key=lambda g: abs(weight[g] - imbalance))
     tried = 0
     for g in order:
-        s, z = c.groups[g]
-        atoms = c.group_of == g
-        for t in _swap_targets(z):
-            if (t - z) != direction or tried >= MAX_SWAPS:
-                continue
-            tried += 1
-            nums = cr.numbers.copy()
-            nums[atoms] = t
-            alt = replace(cr, numbers=nums)
-            cc = _recount(case, alt, sites, case.contacts)
-            if cc is not None and cc.closure.closes and cc.closure.cost < 1:
-                hits.append((cc.closure.cost, g, z, t))
-            elif cc is not None:
-                mixes.append((g, z, t))
+        if tried >= MAX_SWAPS:
+            break
+        z = c.groups[g][1]
+        t = _swap_target(z, direction)
+        if t is None:
+            continue
+        tried += 1
+        nums = cr.numbers.copy()
+        nums[c.group_of == g] = t
+        alt = replace(cr, numbers=nums)
+        cc = _recount(case, alt, sites, case.contacts)
+        if cc is not None and cc.closure.closes and cc.closure.cost < 1:
+            hits.append((cc.closure.cost, g, z, t))
+        elif cc is not None:
+            mixes.append((g, z, t))
     out = []
+    first = _first_atoms(c)
     for cost, g, z, t in sorted(hits)[:3]:
         atoms = c.group_of == g
-        lab = _label(cr, atoms)
+        lab = cr.label(first[g])
         out.append(F.Misassigned(
             sites=[lab], rank=0.95 - 0.05 * cost, site=lab, old=syms[z], new=syms[t], extra="",
             evidence={"site": lab, "from": syms[z], "to": syms[t], "atoms_per_cell": int(np.sum(atoms)),
@@ -545,11 +541,13 @@ def _swaps(case: Case) -> list[F.Finding]:
         return out
     # Mixed occupancy: the fraction that would cancel the residual.
     for g, z, t in mixes:
-        atoms = c.group_of == g
-        w = float(np.sum(cr.occupancy[atoms]))
         dv = elements.valence(syms[t]) - elements.valence(syms[z])
-        if dv == 0 or not c.role[atoms].all():
+        if dv == 0:
             continue
+        atoms = c.group_of == g
+        if not c.role[atoms].all():
+            continue
+        w = float(np.sum(cr.occupancy[atoms]))
         x = -c.residual * c.n_anion / (w * dv)
         if not 0.05 <= x <= 0.95:
             continue
@@ -557,7 +555,7 @@ def _swaps(case: Case) -> list[F.Finding]:
         alt_sites = _extend_sites(sites, atoms)
         cc = _recount(case, alt, alt_sites)
         if cc is not None and cc.closure.closes and cc.closure.cost < 1:
-            lab = _label(cr, atoms)
+            lab = cr.label(first[g])
             out.append(F.Misassigned(
                 sites=[lab], rank=0.75, site=lab, old=syms[z], new=f"{syms[z]}{1 - x:.2f}{syms[t]}{x:.2f}",
                 extra=" (mixed occupancy)",
@@ -595,7 +593,7 @@ def _missing(case: Case) -> list[F.Finding]:
     if abs(e_formula) < 0.5:
         return []
     out = []
-    present = sorted({syms[z] for z in cr.numbers})
+    present = sorted({syms[z] for z in cr.numbers.tolist()})
     anion_syms = [s for s in present if s in c.anions]
     if e_formula < 0:
         short = -e_formula
