@@ -88,7 +88,9 @@ def read(source, *, block: str | None = None, max_bytes: int | None = None,
     unit cell) override the limits in force (:mod:`bondcheck.limits`); an
     input over a limit is turned away before the expensive work.
     """
-    lim = limits.current().but(max_bytes=max_bytes, max_atoms=max_atoms)
+    lim = limits.current()
+    if max_bytes is not None or max_atoms is not None:
+        lim = lim.but(max_bytes=max_bytes, max_atoms=max_atoms)
     try:
         if isinstance(source, Crystal):
             crystals = [source]
@@ -691,14 +693,15 @@ def _check_widths(cell: np.ndarray) -> tuple[float, list[float]]:
     makes a neighbour search visit an enormous number of images).
     """
     (ax, ay, az), (bx, by, bz), (cx, cy, cz) = cell.tolist()
-    faces = []
-    for (ux, uy, uz), (vx, vy, vz) in (((bx, by, bz), (cx, cy, cz)), ((cx, cy, cz), (ax, ay, az)),
-                                       ((ax, ay, az), (bx, by, bz))):
-        faces.append(math.sqrt((uy * vz - uz * vy) ** 2 + (uz * vx - ux * vz) ** 2 + (ux * vy - uy * vx) ** 2))
+    sqrt, isfinite = math.sqrt, math.isfinite
+    fa = sqrt((by * cz - bz * cy) ** 2 + (bz * cx - bx * cz) ** 2 + (bx * cy - by * cx) ** 2)  # |b x c|
+    fb = sqrt((cy * az - cz * ay) ** 2 + (cz * ax - cx * az) ** 2 + (cx * ay - cy * ax) ** 2)  # |c x a|
+    fc = sqrt((ay * bz - az * by) ** 2 + (az * bx - ax * bz) ** 2 + (ax * by - ay * bx) ** 2)  # |a x b|
     vol = abs(ax * (by * cz - bz * cy) - ay * (bx * cz - bz * cx) + az * (bx * cy - by * cx))
-    if not (vol > 0 and math.isfinite(vol) and all(f > 0 and math.isfinite(f) for f in faces)):
+    if not (vol > 0 and isfinite(vol) and fa > 0 and isfinite(fa) and fb > 0 and isfinite(fb)
+            and fc > 0 and isfinite(fc)):
         raise StructureError("impossible unit cell: it has no volume")
-    widths = [vol / f for f in faces]
+    widths = [vol / fa, vol / fb, vol / fc]
     w = min(widths)
     if not w >= MIN_WIDTH:
         k = widths.index(w)
@@ -1039,6 +1042,12 @@ def _count_images(frac: np.ndarray, cell: np.ndarray, group: _Group) -> int:
     return total
 
 
+# Squared distance beyond which no pair of :func:`_duplicates` is within
+# MERGE_TOL: the margin (1e-6 A) is far above the rounding differences between
+# its two ways of summing the same squares, so the quick test never decides
+# otherwise than the full one.
+_APART = (MERGE_TOL + 1e-6) ** 2
+_ONES3 = np.ones(3)
 _NEIGHBOUR_BINS = np.array(np.meshgrid([-1, 0, 1], [-1, 0, 1], [-1, 0, 1], indexing="ij")).reshape(3, -1).T
 _FEW = 64  # up to this many atoms, every pair is looked at
 
@@ -1062,15 +1071,22 @@ def _duplicates(pos: np.ndarray, cell: np.ndarray, widths: list[float], numbers:
 
     Nearest images by rounding fractional differences are exact here: two
     atoms within MERGE_TOL are less than MERGE_TOL / MIN_WIDTH = 0.2 apart in
-    each fractional coordinate.  Beyond _FEW atoms, the cell is cut into bins
-    at least MERGE_TOL wide along each axis, and only atoms in the same or
-    neighbouring bins are compared.
+    each fractional coordinate.  Up to _FEW atoms, all pairs are measured at
+    once first, whatever their elements (a few numpy calls on small arrays),
+    and when none is within MERGE_TOL that settles it; beyond _FEW atoms, the
+    cell is cut into bins at least MERGE_TOL wide along each axis, and only
+    atoms in the same or neighbouring bins are compared.
     """
     n = len(pos)
     if n < 2:
         return None
     if n <= _FEW:
         rows, cols = _pairs(n)
+        d = pos.take(cols, 0) - pos.take(rows, 0)
+        d -= np.rint(d)
+        d = d @ cell
+        if ((d * d) @ _ONES3).min() > _APART:
+            return None
         sel = numbers[cols] == numbers[rows]
     else:
         nb = np.array([max(1, min(int(w / MERGE_TOL), 1 << 20)) for w in widths], dtype=np.int64)
