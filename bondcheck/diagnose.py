@@ -397,7 +397,7 @@ def _hypervalent(case: Case) -> list[F.Finding]:
     contacts = case.contacts
     aa = np.flatnonzero(contacts.bonded)[c.aa_bond]  # anion-anion bonds among the contacts
     aa_i, aa_j = contacts.i[aa], contacts.j[aa]
-    for s in np.unique(case.sites.site[c.role]):
+    for s in sorted(set(case.sites.site[c.role].tolist())):
         k = int(case.sites.representative[s])
         if not c.role[k]:
             continue
