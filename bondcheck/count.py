@@ -447,7 +447,7 @@ class _Context:
         planar_atom = np.zeros(n, dtype=bool)
         three = np.flatnonzero(role & (np.abs(per - 3.0) < 1e-6))
         if three.size:
-            vec = c.vectors(self.crystal)[c.bonded]
+            vec = c.vectors(self.crystal, c.bonded)
             for k in three:
                 m = aa & ((bi == k) | (bj == k))
                 v = np.where((bi[m] == k)[:, None], vec[m], -vec[m])
