@@ -87,6 +87,9 @@ class Contacts:
 
 
 _LOCAL = threading.local()
+# periodic in all three directions, as vesin takes it (made once, not per call)
+_PERIODIC = np.ones(3, dtype=bool)
+_PERIODIC.setflags(write=False)
 
 
 def _check_cell_list(cell: np.ndarray, cutoff: float) -> None:
@@ -131,7 +134,7 @@ def _neighbour_pairs(crystal: Crystal, cutoff: float):
     nl.cutoff = cutoff
     cell = np.ascontiguousarray(crystal.cell, dtype=np.float64)
     pts = np.ascontiguousarray(crystal.frac @ cell, dtype=np.float64)
-    return nl.compute(points=pts, box=cell, periodic=True, quantities="PSd", copy=False)
+    return nl.compute(points=pts, box=cell, periodic=_PERIODIC, quantities="PSd", copy=False)
 
 
 def _references(ratio, i, j, numbers, usable):
@@ -145,7 +148,7 @@ def _references(ratio, i, j, numbers, usable):
     kj = j * ne + code[i]
     n_atoms = code.size
     ru, kiu, kju = ratio, ki, kj
-    if not usable.all():
+    if np.count_nonzero(usable) < usable.size:  # (cheaper than usable.all())
         ru, kiu, kju = ratio[usable], ki[usable], kj[usable]
     best = np.full(n_atoms * ne, np.inf)  # per atom and partner element
     np.minimum.at(best, kiu, ru)
@@ -157,13 +160,21 @@ def _references(ratio, i, j, numbers, usable):
 def _judge(ratio, usable, ref_el, ref_all, core, maximum, relative) -> np.ndarray:
     """The criterion's decision per contact. core, maximum and relative are a
     criterion's numbers, or (k, 1) columns of k criteria's numbers, which give
-    k rows of decisions."""
+    k rows of decisions.
+
+    A contact is bonded when it is usable, ratio <= maximum, and ratio <= core,
+    or ratio <= extended and within relative of the reference to the partner's
+    element, or within relative of the overall reference.  That is one
+    comparison with a threshold: the tests joined by 'or' become a maximum,
+    those joined by 'and' a minimum (both exact).  np.fmax leaves a nan out,
+    as the failed comparison it stands for, and np.minimum keeps it, failing
+    the comparison; so nan numbers decide as the separate comparisons would."""
     eps = 1e-9
-    near_el = ratio <= ref_el * relative + eps
-    near_all = ratio <= ref_all * relative + eps
+    limit_el = ref_el * relative + eps
+    limit_all = ref_all * relative + eps
     extended = core * EXTENDED_RATIO / CORE_RATIO
-    ok = (ratio <= core) | (near_el & (ratio <= extended)) | near_all
-    return usable & (ratio <= maximum) & ok
+    either = np.fmax(np.fmax(core, np.minimum(limit_el, extended)), limit_all)
+    return usable & (ratio <= np.minimum(maximum, either))
 
 
 _WOBBLED: dict[tuple, tuple] = {}
@@ -197,12 +208,13 @@ def find_contacts(crystal: Crystal, criterion: Criterion | None = None) -> Conta
     i, j = pairs[:, 0], pairs[:, 1]
     ratio = d / (rad[i] + rad[j])
     keep = np.flatnonzero(ratio <= SEARCH)
-    i, j, S, d, ratio = i[keep], j[keep], shifts[keep].astype(np.int64), d[keep], ratio[keep]
+    i, j, S, d, ratio = i[keep], j[keep], shifts.take(keep, 0).astype(np.int64), d[keep], ratio[keep]
 
     # Alternatives on split or mixed sites, and genuine overlaps.
     occ = crystal.occupancy
-    close = d < OVERLAP
-    if close.any():
+    close = None  # (when no distance is below OVERLAP, no contact is close)
+    if d.size and not d.min() >= OVERLAP:
+        close = d < OVERLAP
         full = (occ[i] + occ[j] > 1.0 + 1e-3) & close
         if full.any():
             k = int(np.flatnonzero(full)[0])
@@ -214,10 +226,11 @@ def find_contacts(crystal: Crystal, criterion: Criterion | None = None) -> Conta
     # Alternatives need two occupancies adding up to 1 at most: there are
     # none when every occupancy is above one half.
     if 2 * occ.min() <= 1.0 + 1e-3:
-        alt = (occ[i] + occ[j] <= 1.0 + 1e-3) & (close | (ratio < 0.75))
+        near = ratio < 0.75 if close is None else close | (ratio < 0.75)
+        alt = (occ[i] + occ[j] <= 1.0 + 1e-3) & near
         if alt.any():
             keep = ~alt
-            i, j, S, d, ratio = i[keep], j[keep], S[keep], d[keep], ratio[keep]
+            i, j, S, d, ratio = i[keep], j[keep], S.compress(keep, 0), d[keep], ratio[keep]
 
     ep = elements.electropositive_by_z()[z]
     ionic_pair = ep[i] & ep[j]
