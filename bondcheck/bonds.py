@@ -23,7 +23,7 @@ from __future__ import annotations
 
 import math
 import threading
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
@@ -153,7 +153,8 @@ def _references(ratio, i, j, numbers, usable):
     best = np.full(n_atoms * ne, np.inf)  # per atom and partner element
     np.minimum.at(best, kiu, ru)
     np.minimum.at(best, kju, ru)
-    nearest = best.reshape(n_atoms, ne).min(axis=1)
+    # (np.minimum.reduce(x) is x.min() without the method's Python-level wrapper)
+    nearest = np.minimum.reduce(best.reshape(n_atoms, ne), axis=1)
     return np.minimum(best[ki], best[kj]), np.minimum(nearest[i], nearest[j])
 
 
@@ -213,7 +214,7 @@ def find_contacts(crystal: Crystal, criterion: Criterion | None = None) -> Conta
     # Alternatives on split or mixed sites, and genuine overlaps.
     occ = crystal.occupancy
     close = None  # (when no distance is below OVERLAP, no contact is close)
-    if d.size and not d.min() >= OVERLAP:
+    if d.size and not np.minimum.reduce(d) >= OVERLAP:
         close = d < OVERLAP
         full = (occ[i] + occ[j] > 1.0 + 1e-3) & close
         if full.any():
@@ -225,7 +226,7 @@ def find_contacts(crystal: Crystal, criterion: Criterion | None = None) -> Conta
             )
     # Alternatives need two occupancies adding up to 1 at most: there are
     # none when every occupancy is above one half.
-    if 2 * occ.min() <= 1.0 + 1e-3:
+    if 2 * np.minimum.reduce(occ) <= 1.0 + 1e-3:
         near = ratio < 0.75 if close is None else close | (ratio < 0.75)
         alt = (occ[i] + occ[j] <= 1.0 + 1e-3) & near
         if alt.any():
@@ -249,8 +250,6 @@ def find_contacts(crystal: Crystal, criterion: Criterion | None = None) -> Conta
 def rescaled(crystal: Crystal, contacts: Contacts, criterion: Criterion) -> Contacts:
     """The same contacts judged by another criterion (no new neighbour search;
     valid for criteria whose maximum ratio stays below SEARCH)."""
-    from dataclasses import replace
-
     c = contacts
     refs = c.references
     if refs is None or not (refs[0] is crystal.numbers or np.array_equal(refs[0], crystal.numbers)):

@@ -714,7 +714,7 @@ def _check_widths(cell: np.ndarray) -> tuple[float, list[float]]:
 def _check_density(vol: float, occ: np.ndarray) -> None:
     """Reject more atoms per volume than any solid holds (lengths in nm, say)."""
     n = len(occ)
-    weighted = float(occ.sum())
+    weighted = float(np.add.reduce(occ))  # occ.sum() without its Python-level wrapper
     if weighted > MAX_DENSITY * vol or n > MAX_ENTRY_DENSITY * vol:
         raise StructureError(
             f"implausible cell: {weighted:.4g} atoms in {vol:.4g} A^3 ({weighted / vol:.3g} per A^3, "
@@ -1085,7 +1085,7 @@ def _duplicates(pos: np.ndarray, cell: np.ndarray, widths: list[float], numbers:
         d = pos.take(cols, 0) - pos.take(rows, 0)
         d -= np.rint(d)
         d = d @ cell
-        if ((d * d) @ _ONES3).min() > _APART:
+        if np.minimum.reduce((d * d) @ _ONES3) > _APART:
             return None
         sel = numbers[cols] == numbers[rows]
     else:
@@ -1148,7 +1148,8 @@ def _duplicate_sites(frac: np.ndarray, cell: np.ndarray, group: _Group, numbers:
 def _wrap(frac: np.ndarray) -> np.ndarray:
     """Fractional coordinates into [0, 1), C-contiguous."""
     frac = np.subtract(frac, np.floor(frac), order="C")
-    if not frac.max() < 1.0:  # -1e-17 wraps to 1.0 in floating point
+    # (np.maximum.reduce is frac.max() without its Python-level wrapper)
+    if not np.maximum.reduce(frac, axis=None) < 1.0:  # -1e-17 wraps to 1.0 in floating point
         frac[frac >= 1.0] = 0.0
     return frac
 
