@@ -438,12 +438,13 @@ def _cif_crystals(data, source: str, block: str | None, lim: limits.Limits,
         raise StructureError("not a CIF file: no data_ block")
 
     all_blocks = [doc[i] for i in range(len(doc))]  # (indexing is cheaper than iterating)
-    blocks = [b for b in all_blocks if _has_atoms(b)]
+    # the blocks with atom sites, each with its first atom-site column
+    blocks = [(b, column) for b, column in zip(all_blocks, map(_atom_column, all_blocks)) if column is not None]
     if block is not None:
-        wanted = [b for b in blocks if b.name == block] or [
-            b for b in blocks if b.name.lower() == block.lower()]
+        wanted = [bc for bc in blocks if bc[0].name == block] or [
+            bc for bc in blocks if bc[0].name.lower() == block.lower()]
         if not wanted:
-            names = ", ".join(b.name for b in blocks) or "none with atoms"
+            names = ", ".join(b.name for b, _ in blocks) or "none with atoms"
             raise StructureError(f"no data block named '{block}' (found: {names})")
         blocks = wanted
     if not blocks:
@@ -453,11 +454,11 @@ def _cif_crystals(data, source: str, block: str | None, lim: limits.Limits,
 
     several = len(blocks) > 1 or len(doc) > 1
     crystals: list = []
-    for b in blocks:
+    for b, column in blocks:
         src = f"{source}#{b.name}" if several else source
         try:
             try:
-                c = _crystal_from_block(b, src, lim.max_atoms)
+                c = _crystal_from_block(b, column, src, lim.max_atoms)
             except StructureError:
                 raise
             except MemoryError:
@@ -581,23 +582,23 @@ _ATOM_KEYS = ("_atom_site_fract_x", "_atom_site.fract_x", "_atom_site_label",
               "_atom_site.label", "_atom_site_type_symbol", "_atom_site.type_symbol")
 
 
-def _has_atoms(block) -> bool:
-    for key in _ATOM_KEYS:
-        if block.find_values(key):
-            return True
-    return False
-
-
-def _atom_loop(block) -> tuple[list[str], list[str]]:
-    """Lower-case atom-site tags (underscore form) and the flat list of values."""
+def _atom_column(block):
+    """The block's first atom-site column of _ATOM_KEYS (gemmi's Column), or
+    None when the block has no atom sites."""
     for key in _ATOM_KEYS:
         col = block.find_values(key)
         if col:
-            loop = col.get_loop()
-            if loop is not None:
-                tags = [t.lower().replace("_atom_site.", "_atom_site_", 1) for t in loop.tags]
-                return tags, loop.values
-            break
+            return col
+    return None
+
+
+def _atom_loop(block, column) -> tuple[list[str], list[str]]:
+    """Lower-case atom-site tags (underscore form) and the flat list of
+    values; ``column`` is the block's :func:`_atom_column`."""
+    loop = column.get_loop()
+    if loop is not None:
+        tags = [t.lower().replace("_atom_site.", "_atom_site_", 1) for t in loop.tags]
+        return tags, loop.values
     # atom sites given as single key-value pairs (one atom)
     tags, values = [], []
     for item in block:
@@ -1214,8 +1215,9 @@ def _filled(n: int, value: float) -> np.ndarray:
     return a
 
 
-def _crystal_from_block(block, source: str, max_atoms: int = limits.MAX_ATOMS) -> Crystal:
-    tags, values = _atom_loop(block)
+def _crystal_from_block(block, column, source: str, max_atoms: int = limits.MAX_ATOMS) -> Crystal:
+    """The crystal of one data block; ``column`` is the block's :func:`_atom_column`."""
+    tags, values = _atom_loop(block, column)
     ncol = len(tags)
     nrow = len(values) // ncol if ncol else 0
     if nrow == 0:
