@@ -158,10 +158,16 @@ def _references(ratio, i, j, numbers, usable):
     return np.minimum(best[ki], best[kj]), np.minimum(nearest[i], nearest[j])
 
 
-def _judge(ratio, usable, ref_el, ref_all, core, maximum, relative) -> np.ndarray:
-    """The criterion's decision per contact. core, maximum and relative are a
-    criterion's numbers, or (k, 1) columns of k criteria's numbers, which give
-    k rows of decisions.
+def _extended(core):
+    """The ratio up to which a contact near the reference to the partner's
+    element is bonded, for a criterion's core ratio (or a column of them)."""
+    return core * EXTENDED_RATIO / CORE_RATIO
+
+
+def _judge(ratio, usable, ref_el, ref_all, core, maximum, relative, extended) -> np.ndarray:
+    """The criterion's decision per contact. core, maximum, relative and
+    extended (:func:`_extended` of core) are a criterion's numbers, or (k, 1)
+    columns of k criteria's numbers, which give k rows of decisions.
 
     A contact is bonded when it is usable, ratio <= maximum, and ratio <= core,
     or ratio <= extended and within relative of the reference to the partner's
@@ -173,7 +179,6 @@ def _judge(ratio, usable, ref_el, ref_all, core, maximum, relative) -> np.ndarra
     eps = 1e-9
     limit_el = ref_el * relative + eps
     limit_all = ref_all * relative + eps
-    extended = core * EXTENDED_RATIO / CORE_RATIO
     either = np.fmax(np.fmax(core, np.minimum(limit_el, extended)), limit_all)
     return usable & (ratio <= np.minimum(maximum, either))
 
@@ -182,13 +187,15 @@ _WOBBLED: dict[tuple, tuple] = {}
 
 
 def _wobbled(criterion: Criterion) -> tuple:
-    """(core, maximum, relative) as (3, 1) columns of the criterion and its
-    scalings by 1 - WOBBLE and 1 + WOBBLE, for one _judge call on all three."""
+    """(core, maximum, relative, extended) as (3, 1) columns of the criterion
+    and its scalings by 1 - WOBBLE and 1 + WOBBLE, for one _judge call on all
+    three."""
     key = (criterion.core, criterion.maximum, criterion.relative)
     cols = _WOBBLED.get(key)
     if cols is None:
         crits = (criterion, criterion.scaled(1 - WOBBLE), criterion.scaled(1 + WOBBLE))
         cols = tuple(np.array([[getattr(c, k)] for c in crits]) for k in ("core", "maximum", "relative"))
+        cols += (_extended(cols[0]),)
         if len(_WOBBLED) < 64:
             _WOBBLED[key] = cols
     return cols
@@ -208,7 +215,7 @@ def find_contacts(crystal: Crystal, criterion: Criterion | None = None) -> Conta
     pairs = pairs.view(np.intp)
     i, j = pairs[:, 0], pairs[:, 1]
     ratio = d / (rad[i] + rad[j])
-    keep = np.flatnonzero(ratio <= SEARCH)
+    keep = (ratio <= SEARCH).nonzero()[0]
     i, j, S, d, ratio = i[keep], j[keep], shifts.take(keep, 0).astype(np.int64), d[keep], ratio[keep]
 
     # Alternatives on split or mixed sites, and genuine overlaps.
@@ -255,7 +262,8 @@ def rescaled(crystal: Crystal, contacts: Contacts, criterion: Criterion) -> Cont
     if refs is None or not (refs[0] is crystal.numbers or np.array_equal(refs[0], crystal.numbers)):
         usable = ~c.ionic_pair
         refs = (crystal.numbers, usable) + _references(c.ratio, c.i, c.j, crystal.numbers, usable)
-    bonded = _judge(c.ratio, *refs[1:], criterion.core, criterion.maximum, criterion.relative)
+    bonded = _judge(c.ratio, *refs[1:], criterion.core, criterion.maximum, criterion.relative,
+                    _extended(criterion.core))
     return replace(c, bonded=bonded)
 
 
