@@ -137,6 +137,13 @@ def _neighbour_pairs(crystal: Crystal, cutoff: float):
     return nl.compute(points=pts, box=cell, periodic=_PERIODIC, quantities="PSd", copy=False)
 
 
+def _filled(n: int, value: float) -> np.ndarray:
+    """np.full(n, value) of floats, without np.full's Python-level steps."""
+    a = np.empty(n)
+    a.fill(value)
+    return a
+
+
 def _references(ratio, i, j, numbers, usable):
     """Per contact, the criterion-independent references of the relative test:
     the shorter of the two atoms' shortest contacts to each other's element,
@@ -150,7 +157,7 @@ def _references(ratio, i, j, numbers, usable):
     ru, kiu, kju = ratio, ki, kj
     if np.count_nonzero(usable) < usable.size:  # (cheaper than usable.all())
         ru, kiu, kju = ratio[usable], ki[usable], kj[usable]
-    best = np.full(n_atoms * ne, np.inf)  # per atom and partner element
+    best = _filled(n_atoms * ne, np.inf)  # per atom and partner element
     np.minimum.at(best, kiu, ru)
     np.minimum.at(best, kju, ru)
     # (np.minimum.reduce(x) is x.min() without the method's Python-level wrapper)
@@ -280,12 +287,12 @@ def per_atom(contacts: Contacts, n_atoms: int, occupancy: np.ndarray):
     usable2 = ~np.concatenate([c.ionic_pair, c.ionic_pair])
     at, r = both_i[bonded2], ratio2[bonded2]
     coord = np.bincount(at, weights=occupancy[both_j[bonded2]], minlength=n_atoms)
-    last = np.full(n_atoms, np.nan)
+    last = _filled(n_atoms, np.nan)
     np.fmax.at(last, at, r)
-    nearest = np.full(n_atoms, np.nan)
+    nearest = _filled(n_atoms, np.nan)
     np.fmin.at(nearest, both_i[usable2], ratio2[usable2])
     out = usable2 & ~bonded2
-    first_out = np.full(n_atoms, np.nan)
+    first_out = _filled(n_atoms, np.nan)
     np.fmin.at(first_out, both_i[out], ratio2[out])
     fragile = np.zeros(n_atoms, dtype=bool)
     fragile[c.i[c.fragile]] = True
