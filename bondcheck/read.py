@@ -617,6 +617,13 @@ def _unquote(v: str) -> str:
     return v
 
 
+def _is_null(v: str) -> bool:
+    """Whether a value is '?' or '.' (unknown, not applicable), quoted or not.
+    (Unquoting keeps a part of the value, so one without '?' and '.' is
+    settled without it.)"""
+    return ("?" in v or "." in v) and _unquote(v).strip() in ("?", ".")
+
+
 def _num(v: str) -> float:
     """A CIF number: '1.234(5)' -> 1.234; '?', '.' -> nan."""
     try:
@@ -964,7 +971,7 @@ def _symmetry(block, alpha: float, gamma: float):
         triplets = _find_column(block, _MAGN_OP_TAGS)
         if triplets:
             centerings = _find_column(block, _MAGN_CEN_TAGS)
-    if triplets and not (len(triplets) == 1 and _unquote(triplets[0]).strip() in ("?", ".")):
+    if triplets and not (len(triplets) == 1 and _is_null(triplets[0])):
         return [(_group_from_triplets(tuple(triplets), tuple(centerings)), "")], hm, "operators"
 
     hall = _find_value(block, _HALL_TAGS)
@@ -975,7 +982,7 @@ def _symmetry(block, alpha: float, gamma: float):
     how = "hm"
     if not hm:
         number = _find_value(block, _NUMBER_TAGS)
-        if number is None or _unquote(number).strip() in ("?", "."):
+        if number is None or _is_null(number):
             return [(_group_from_triplets(("x,y,z",)), "P 1")], "", "none"
         try:
             sg = gemmi.find_spacegroup_by_number(int(_num(number)))
