@@ -1085,8 +1085,9 @@ def _count_images(frac: np.ndarray, cell: np.ndarray, group: _Group) -> int:
 
 # Squared distance beyond which no pair of :func:`_duplicates` is within
 # MERGE_TOL: the margin (1e-6 A) is far above the rounding differences between
-# its two ways of summing the same squares, so the quick test never decides
-# otherwise than the full one.
+# its two computations of the same distances (all pairs at once, then the
+# pairs of one element), so the quick test never decides otherwise than the
+# full one.
 _APART = (MERGE_TOL + 1e-6) ** 2
 _ONES3 = np.ones(3)
 _NEIGHBOUR_BINS = np.array(np.meshgrid([-1, 0, 1], [-1, 0, 1], [-1, 0, 1], indexing="ij")).reshape(3, -1).T
@@ -1123,10 +1124,12 @@ def _duplicates(pos: np.ndarray, cell: np.ndarray, widths: list[float], numbers:
         return None
     if n <= _FEW:
         rows, cols = _pairs(n)
-        d = pos.take(cols, 0) - pos.take(rows, 0)
+        d = pos.take(cols, 0)
+        d -= pos.take(rows, 0)
         d -= np.rint(d)
         d = d @ cell
-        if np.minimum.reduce((d * d) @ _ONES3) > _APART:
+        d *= d
+        if np.minimum.reduce(d @ _ONES3) > _APART:
             return None
         sel = numbers[cols] == numbers[rows]
     else:
