@@ -41,7 +41,7 @@ __all__ = ["scan", "Scanner", "Tally", "check_entry", "settings_key", "open_writ
 
 EXIT_OK, EXIT_FLAGGED, EXIT_USAGE, EXIT_INTERRUPTED = 0, 1, 2, 130
 DEFAULT_STORE = "bondcheck-store.sqlite"
-DEFAULT_CHUNK = 8
+DEFAULT_CHUNK = 32
 
 # Findings that point at a wrong structure rather than unusual chemistry:
 # they head the list of entries worth a look whenever they are present.
@@ -96,37 +96,50 @@ def check_entry(entry: Entry, options) -> tuple[str, list[dict]]:
     """Check one entry: (status, rows).  Rows are ``Result.to_dict()`` in the
     store's content-only form (``path`` is what follows the entry id: '' or
     '#block') plus ``entry_seconds``.  Never raises for bad input."""
-    from .api import Result, check_crystal
+    return check_entries([entry], options)[0]
+
+
+def check_entries(entries: list[Entry], options) -> list[tuple[str, list[dict]]]:
+    """`check_entry` for each entry: all are read first, then their
+    structures are checked together, stage by stage (`check_crystals`).
+    ``entry_seconds`` is the entry's reading time plus its structures' own
+    stage times."""
+    from .api import check_crystals
     from .record import StructureError
 
-    t0 = time.perf_counter()
-    rows: list[dict] = []
-    try:
-        crystals = load_crystals(entry)
-    except StructureError as exc:
-        rows.append(_row("", "error", str(exc)))
-    except MemoryError:
-        rows.append(_row("", "error", "out of memory while reading"))
-    except Exception as exc:  # a reader bug must not stop the scan
-        rows.append(_row("", "error", f"unexpected {type(exc).__name__} while reading: {exc}"))
-    else:
-        if not crystals:
-            rows.append(_row("", "error", "no structure in this entry"))
+    loaded = []
+    for entry in entries:
+        t0 = time.perf_counter()
+        rows: list[dict] = []
+        crystals: list = []
+        try:
+            crystals = load_crystals(entry)
+        except StructureError as exc:
+            rows.append(_row("", "error", str(exc)))
+        except MemoryError:
+            rows.append(_row("", "error", "out of memory while reading"))
+        except Exception as exc:  # a reader bug must not stop the scan
+            rows.append(_row("", "error", f"unexpected {type(exc).__name__} while reading: {exc}"))
+        else:
+            if not crystals:
+                rows.append(_row("", "error", "no structure in this entry"))
+        loaded.append((time.perf_counter() - t0, crystals, rows))
+    results = iter(check_crystals([c for _, cs, _ in loaded for c in cs], options))
+    out = []
+    for entry, (seconds, crystals, rows) in zip(entries, loaded):
         n = len(entry.id)
-        for c in crystals:
-            try:
-                d = check_crystal(c, options).to_dict()
-            except Exception as exc:
-                d = Result(path=c.source, name=c.name, status="error",
-                           error=f"unexpected {type(exc).__name__}: {exc}").to_dict()
+        for _ in crystals:
+            r = next(results)
+            seconds += r.seconds
+            d = r.to_dict()
             p = d.get("path") or ""
             d["path"] = p[n:] if p.startswith(entry.id) else ""
             rows.append(d)
-    dt = round(time.perf_counter() - t0, 5)
-    for d in rows:
-        d["entry_seconds"] = dt
-    status = "error" if any(d["status"] != "ok" for d in rows) else "ok"
-    return status, rows
+        dt = round(seconds, 5)
+        for d in rows:
+            d["entry_seconds"] = dt
+        out.append(("error" if any(d["status"] != "ok" for d in rows) else "ok", rows))
+    return out
 
 
 # What the main process needs of a row to keep the tally, when no output
@@ -141,8 +154,8 @@ def _brief(d: dict) -> dict:
     return b
 
 
-def _answer(e: Entry, job: tuple) -> tuple:
-    """What a worker sends back for one entry: (seq, status, rows, blob,
+def _answers(entries: list[Entry], job: tuple) -> list[tuple]:
+    """What a worker sends back for each entry: (seq, status, rows, blob,
     texts).  The store's blob and the JSON text of each row are made here, in
     parallel, rather than in the main process; ``rows`` are whole only when
     the main process needs them, the blob only when there is a store
@@ -151,19 +164,22 @@ def _answer(e: Entry, job: tuple) -> tuple:
 
     options, full, limits, to_store = job
     with applied(limits):
-        status, rows = check_entry(e, options)
-    texts = []
-    for d in rows:  # one encoding per row serves the store and the JSON Lines output
-        g = {"path": d.get("path") or ""}
-        g.update(d)
-        texts.append(json.dumps(g, separators=(",", ":"), allow_nan=False))
-    blob = zlib.compress(("[" + ",".join(texts) + "]").encode(), 1) if to_store else None
-    return e.seq, status, rows if full else [_brief(d) for d in rows], blob, texts
+        checked = check_entries(entries, options)
+    out = []
+    for e, (status, rows) in zip(entries, checked):
+        texts = []
+        for d in rows:  # one encoding per row serves the store and the JSON Lines output
+            g = {"path": d.get("path") or ""}
+            g.update(d)
+            texts.append(json.dumps(g, separators=(",", ":"), allow_nan=False))
+        blob = zlib.compress(("[" + ",".join(texts) + "]").encode(), 1) if to_store else None
+        out.append((e.seq, status, rows if full else [_brief(d) for d in rows], blob, texts))
+    return out
 
 
 def _check_chunk(entries: list[Entry], job: tuple) -> list[tuple]:
     """A chunk of entries, as a Dask task."""
-    return [_answer(e, job) for e in entries]
+    return _answers(entries, job)
 
 
 def _timeout_rows(timeout: float, elapsed: float) -> list[dict]:
@@ -211,7 +227,7 @@ class _Inline:
 
     def poll(self, wait: float) -> list[Completion]:
         e = self.queue.popleft()
-        return [(e, *_answer(e, self.job)[1:])]
+        return [(e, *_answers([e], self.job)[0][1:])]
 
     def close(self) -> None:
         self.queue.clear()
@@ -237,8 +253,7 @@ def _worker_main(tasks, conn, job: tuple, main_pid: int) -> None:
             return
         if chunk is None:
             return
-        for e in chunk:
-            msg = _answer(e, job)
+        for msg in _answers(chunk, job):
             try:
                 conn.send(msg)
             except (BrokenPipeError, OSError):
@@ -326,14 +341,19 @@ class _Processes:
                     continue  # gets no more work; renewed once it has answered
                 w = self._renew(w)
             while len(w.out) + self.chunk <= self.limit:
-                chunk = _take_chunk(lambda: self.retry.popleft() if self.retry else take(), self.chunk)
+                if self.retry:  # given back after a batch failed: one at a time
+                    chunk = _take_chunk(self.retry.popleft, 1)
+                else:
+                    chunk = _take_chunk(take, self.chunk)
                 if not chunk:
                     return
+                for e in chunk:
+                    e.batched = len(chunk) > 1
                 if not w.out:
                     w.last = chunk[0].sent
                 w.out.extend(chunk)
                 w.tasks.put(chunk)
-                if len(chunk) < self.chunk:
+                if len(chunk) < self.chunk and not self.retry:
                     return
 
     def poll(self, wait: float) -> list[Completion]:
@@ -393,7 +413,14 @@ class _Processes:
             w.proc.join()
         code = w.proc.exitcode
         self._discard(w)
-        if w.out:
+        if w.out and w.out[0].batched:
+            # The worker was on a batch: which entry is to blame is unknown,
+            # so every entry it held is checked again, one at a time.
+            self.retry.extendleft(reversed(w.out))
+            w.out.clear()
+            if why != "timeout" and not w.done:
+                self.deaths += 1
+        elif w.out:
             head = w.out.popleft()
             if why == "timeout":
                 done.append((head, "timeout", _timeout_rows(self.timeout, now - max(w.last, head.sent)), None, None))
@@ -701,6 +728,12 @@ class Scanner:
             self._ready.extend(specific(rows, other.id, digest, texts))
 
     # -- the loop -----------------------------------------------------------
+
+    def leftover(self) -> Iterator[dict]:
+        """After an interruption: rows that were finished, and are in the
+        store, but had not been handed out by :meth:`rows`."""
+        while self._ready:
+            yield self._ready.popleft()
 
     def rows(self, tick: float = 0.2) -> Iterator[dict]:
         """Result rows, one per structure (one per entry that could not be
@@ -1223,6 +1256,13 @@ def scan(inputs: Iterable[str], options=None, *, out: Iterable[str] = (), store:
         tally.interrupted = True
     finally:
         rows.close()
+        if tally.interrupted:
+            # rows finished (and stored) before the interruption but not yet
+            # handed out go to the outputs too: the files hold what the store does
+            for row in sc.leftover():
+                tally.add(row)
+                for w in writers:
+                    w.write(row)
         if bar is not None:
             bar.close(tally)
         for w in writers:

@@ -40,7 +40,7 @@ _DB_PAGE = 500
 class Entry:
     """One unit of scan work. Plain data, cheap to pickle to a worker."""
 
-    __slots__ = ("id", "name", "data", "path", "atoms", "error", "digest", "seq", "sent")
+    __slots__ = ("id", "name", "data", "path", "atoms", "error", "digest", "seq", "sent", "batched")
 
     def __init__(self, id: str, name: str, *, data: bytes | None = None, path: str | None = None,
                  atoms=None, error: str | None = None):
@@ -53,6 +53,7 @@ class Entry:
         self.digest = ""          # content hash, set by :meth:`content_hash`
         self.seq = 0              # position in the scan, set by the scanner
         self.sent = 0.0           # when it was handed to a worker
+        self.batched = False      # handed over with others, checked together
 
     def __getstate__(self):
         return (self.id, self.name, self.data, self.path, self.atoms, self.error, self.digest, self.seq)
@@ -60,6 +61,7 @@ class Entry:
     def __setstate__(self, state):
         (self.id, self.name, self.data, self.path, self.atoms, self.error, self.digest, self.seq) = state
         self.sent = 0.0
+        self.batched = False
 
     def __repr__(self) -> str:
         return f"Entry({self.id!r})"

@@ -127,3 +127,31 @@ def test_lgps_partial_occupancy(pmg_structures):
     assert r.vec_anion == pytest.approx(8.0, abs=0.02)
     assert "partial-occupancy" in [f.slug for f in r.findings]
     assert any(s["occupancy"] < 1 for s in r.sites)
+
+
+def test_checked_together_as_one_at_a_time(minerals, pmg_structures):
+    """check_crystals (stage by stage over a list, as scan workers run) gives
+    every result check_crystal gives, on ase's bundled COD minerals and
+    pymatgen's bundled structures; a record that cannot be checked (a cell
+    with no atoms, made here) gets its error without disturbing the others."""
+    from dataclasses import replace
+
+    from bondcheck.api import Options, check_crystal, check_crystals
+    from bondcheck.read import read
+
+    crystals = [c for f in sorted(minerals.glob("*.cif")) for c in read(f)]
+    crystals += [c for f in sorted(pmg_structures.glob("*.json"))[:12] for c in read(f)]
+    empty = replace(crystals[0], frac=crystals[0].frac[:0], numbers=crystals[0].numbers[:0],
+                    occupancy=crystals[0].occupancy[:0], labels=crystals[0].labels[:0],
+                    charges=crystals[0].charges[:0], name="empty")
+    crystals.insert(3, empty)
+    assert len(crystals) > 20
+    for opts in (Options(), Options(symmetry=False)):
+        together = check_crystals(crystals, opts)
+        assert len(together) == len(crystals)
+        for c, r in zip(crystals, together):
+            a, b = check_crystal(c, opts).to_dict(), r.to_dict()
+            a.pop("seconds"), b.pop("seconds")
+            assert a == b, c.name
+        assert together[3].status == "error" and together[3].error == "no atoms in the structure"
+        assert sum(r.status == "ok" for r in together) == len(crystals) - 1

@@ -340,13 +340,13 @@ def test_globs_lists_and_missing_paths(tmp_path):
     assert code == 1  # entries in error
 
 
-def _slow_structure(path: Path) -> None:
-    """A 16 x 16 x 16 supercell of zincblende SiC (COD 1010995): 32768 atoms,
-    several seconds of work when the space group is searched (about 10 s
-    here; 0.3 s of it without the search)."""
+def _slow_structure(path: Path, n: int = 16) -> None:
+    """An n x n x n supercell of zincblende SiC (COD 1010995): 32768 atoms for
+    n = 16, several seconds of work when the space group is searched (about
+    10 s here, 0.3 s of it without the search; about 3 s for n = 13)."""
     import ase.io
 
-    ase.io.write(path, ase.io.read(MINERALS / SIC).repeat((16, 16, 16)), format="extxyz")
+    ase.io.write(path, ase.io.read(MINERALS / SIC).repeat((n, n, n)), format="extxyz")
 
 
 # The timeout tests need an entry that is slow: the space-group search of a
@@ -380,17 +380,13 @@ def test_timeout_kills_the_worker_and_goes_on(tmp_path):
     assert len(list(sc.rows())) == 4 and sc.checked == 0
 
 
-def test_a_worker_killed_under_an_entry_costs_only_that_entry(tmp_path):
-    """As when the out-of-memory killer takes a worker: the entry it was on
-    gets an error row (not stored, so a rerun tries it again); the rest go on."""
-    psutil = pytest.importorskip("psutil")
+def _kill_a_busy_worker():
+    """A thread that, as the out-of-memory killer might, kills the scan's
+    worker once it has been busy for a second."""
     import threading
 
-    col = tmp_path / "col"
-    col.mkdir()
-    _slow_structure(col / "a-huge.xyz")
-    for name in (SIC, MOS2):
-        shutil.copy(MINERALS / name, col / name)
+    import psutil
+
     me = psutil.Process()
 
     def kill_worker():
@@ -407,8 +403,22 @@ def test_a_worker_killed_under_an_entry_costs_only_that_entry(tmp_path):
 
     killer = threading.Thread(target=kill_worker)
     killer.start()
+    return killer
+
+
+def test_a_worker_killed_under_an_entry_costs_only_that_entry(tmp_path):
+    """As when the out-of-memory killer takes a worker that checks one entry
+    at a time (--chunk 1): the entry it was on gets an error row (not stored,
+    so a rerun tries it again); the rest go on."""
+    pytest.importorskip("psutil")
+    col = tmp_path / "col"
+    col.mkdir()
+    _slow_structure(col / "a-huge.xyz")
+    for name in (SIC, MOS2):
+        shutil.copy(MINERALS / name, col / name)
+    killer = _kill_a_busy_worker()
     store = tmp_path / "s.sqlite"
-    sc = Scanner([str(col)], SLOW, store=str(store), jobs=1)
+    sc = Scanner([str(col)], SLOW, store=str(store), jobs=1, chunk=1)
     got = _by_entry(sc.rows())
     killer.join()
     big = got[str(col / "a-huge.xyz")]
@@ -419,6 +429,29 @@ def test_a_worker_killed_under_an_entry_costs_only_that_entry(tmp_path):
     stored = {r[0] for r in con.execute("SELECT entry FROM entries")}
     con.close()
     assert stored == {str(col / SIC), str(col / MOS2)}
+
+
+def test_a_worker_killed_under_a_batch_loses_nothing(tmp_path):
+    """A worker checks its chunk as one batch, so when it dies nobody knows
+    which entry was to blame: every entry of the batch is checked again, one
+    at a time. A one-off kill then costs no entry at all."""
+    pytest.importorskip("psutil")
+    col = tmp_path / "col"
+    col.mkdir()
+    _slow_structure(col / "a-huge.xyz", 13)
+    for name in (SIC, MOS2):
+        shutil.copy(MINERALS / name, col / name)
+    killer = _kill_a_busy_worker()
+    store = tmp_path / "s.sqlite"
+    sc = Scanner([str(col)], SLOW, store=str(store), jobs=1)
+    got = _by_entry(sc.rows())
+    killer.join()
+    assert {k: r["status"] for k, r in got.items()} == {str(col / n): "ok" for n in ("a-huge.xyz", SIC, MOS2)}
+    assert got[str(col / "a-huge.xyz")]["spacegroup"] == "F-43m (216)"  # the supercell keeps zincblende's group
+    con = sqlite3.connect(store)
+    stored = {r[0] for r in con.execute("SELECT entry FROM entries")}
+    con.close()
+    assert stored == {str(col / n) for n in ("a-huge.xyz", SIC, MOS2)}
 
 
 def _copies(col: Path, n: int) -> None:
