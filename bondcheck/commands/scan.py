@@ -31,7 +31,7 @@ def register(subparsers) -> None:
                    help="process: local worker processes (default); inline: this process, one at a time; "
                         "dask: an existing Dask cluster (--scheduler)")
     p.add_argument("--scheduler", metavar="ADDRESS", help="Dask scheduler address, e.g. tcp://head-node:8786")
-    p.add_argument("--chunk", type=int, default=None, metavar="N", help="entries sent to a worker at a time (default 8)")
+    p.add_argument("--chunk", type=int, default=None, metavar="N", help="entries sent to a worker at a time and checked together, stage by stage (default 32)")
     p.add_argument("--retry-failed", action="store_true",
                    help="check again the entries the store has as error or timeout")
     p.add_argument("--progress", action=argparse.BooleanOptionalAction, default=None,
