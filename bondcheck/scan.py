@@ -620,7 +620,7 @@ class Scanner:
         self.inputs = [os.fspath(i) for i in inputs]
         # A scan groups atoms into sites by environment unless told otherwise
         # (Options(symmetry=True)): the same verdicts and electron counts at
-        # about twice the speed, without space groups or Wyckoff letters.
+        # nearly three times the speed, without space groups or Wyckoff letters.
         self.options = options or Options(symmetry=False)
         self.okey = settings_key(self.options)
         # the limits in force here (bondcheck.limits) go to the workers too

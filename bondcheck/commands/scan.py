@@ -47,7 +47,7 @@ def register(subparsers) -> None:
     p.add_argument("--symmetry", action=argparse.BooleanOptionalAction, default=False,
                    help="search space groups (spglib) for Wyckoff letters, multiplicities and the space group in "
                         "each row; off by default: sites are grouped by environment, which gives the same "
-                        "verdicts and electron counts at about twice the speed (site-level findings can differ "
+                        "verdicts and electron counts at nearly three times the speed (site-level findings can differ "
                         "where atoms of different orbits share one environment)")
     p.set_defaults(run=run)
 
