@@ -4,7 +4,8 @@
     >>> r = bondcheck.check("sample.cif")
     >>> r.verdict, r.causes
 
-The CLI, batch scans and cluster runs all call `check_crystal`.
+The CLI calls `check_crystal`; scans and cluster runs call `check_crystals`,
+which runs the same stages over a chunk of structures.
 """
 from __future__ import annotations
 
