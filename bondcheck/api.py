@@ -19,6 +19,7 @@ from typing import Any, Iterable, Iterator
 import numpy as np
 
 from . import elements
+from .arrays import first_index, first_seen
 from .bonds import Criterion, find_contacts, per_atom
 from .count import Count, _element_facts, count, target
 from .diagnose import diagnose
@@ -286,11 +287,10 @@ def _site_rows(crystal, sites, c: Count | None, coord, nearest, last, first_out,
         return [round(x, 3) + 0.0 if isfinite(x) else None for x in values.tolist()]
 
     # Groups of atoms by (site, element), numbered in order of their first atom.
-    groups: dict[tuple[int, int], int] = {}
-    inv_list = [groups.setdefault(key, len(groups)) for key in zip(sites.site.tolist(), crystal.numbers.tolist())]
-    ng = len(groups)
-    first_of = dict(zip(reversed(inv_list), range(len(inv_list) - 1, -1, -1)))  # the last write is the first atom
-    first = [first_of[u] for u in range(ng)]
+    keys = list(zip(sites.site.tolist(), crystal.numbers.tolist()))
+    inv_list = first_seen(keys)
+    first = first_index(inv_list)
+    ng = len(first)
     inv = np.array(inv_list, dtype=np.int64)
     counts = np.bincount(inv, minlength=ng)
     crowded = [u for u, n in enumerate(counts.tolist()) if n >= 8]
@@ -307,11 +307,12 @@ def _site_rows(crystal, sites, c: Count | None, coord, nearest, last, first_out,
         group_first = c.group_of[first].tolist()
         keep = c.closure.keep if c.closure.closes else {}
     rows = []
-    for u, (s, z) in enumerate(groups):
+    for u, k in enumerate(first):
+        s, z = keys[k]
         sym, _block, valence, keep_opts = _element_facts(z)
         fu, lb = firstu[u], lastb[u]
         row = {
-            "label": crystal.label(first[u]),
+            "label": crystal.label(k),
             "element": sym,
             "multiplicity": None if mult is None else mult[s],
             "wyckoff": sites.wyckoff[s],

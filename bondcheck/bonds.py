@@ -28,6 +28,7 @@ from dataclasses import dataclass, replace
 import numpy as np
 
 from . import elements
+from .arrays import filled, first_seen
 from .record import Crystal, StructureError
 
 CORE_RATIO = 1.15
@@ -137,27 +138,20 @@ def _neighbour_pairs(crystal: Crystal, cutoff: float):
     return nl.compute(points=pts, box=cell, periodic=_PERIODIC, quantities="PSd", copy=False)
 
 
-def _filled(n: int, value: float) -> np.ndarray:
-    """np.full(n, value) of floats, without np.full's Python-level steps."""
-    a = np.empty(n)
-    a.fill(value)
-    return a
-
-
 def _references(ratio, i, j, numbers, usable):
     """Per contact, the criterion-independent references of the relative test:
     the shorter of the two atoms' shortest contacts to each other's element,
     and the shorter of their shortest contacts altogether."""
-    codes: dict[int, int] = {}
-    code = np.array([codes.setdefault(z, len(codes)) for z in numbers.tolist()], dtype=np.int64)
-    ne = len(codes)
+    code = first_seen(numbers.tolist())  # element codes 0, 1, ... per atom
+    ne = max(code) + 1
+    code = np.array(code, dtype=np.int64)
     ki = i * ne + code[j]
     kj = j * ne + code[i]
     n_atoms = code.size
     ru, kiu, kju = ratio, ki, kj
     if np.count_nonzero(usable) < usable.size:  # (cheaper than usable.all())
         ru, kiu, kju = ratio[usable], ki[usable], kj[usable]
-    best = _filled(n_atoms * ne, np.inf)  # per atom and partner element
+    best = filled(n_atoms * ne, np.inf)  # per atom and partner element
     np.minimum.at(best, kiu, ru)
     np.minimum.at(best, kju, ru)
     # (np.minimum.reduce(x) is x.min() without the method's Python-level wrapper)
@@ -287,12 +281,12 @@ def per_atom(contacts: Contacts, n_atoms: int, occupancy: np.ndarray):
     usable2 = ~np.concatenate([c.ionic_pair, c.ionic_pair])
     at, r = both_i[bonded2], ratio2[bonded2]
     coord = np.bincount(at, weights=occupancy[both_j[bonded2]], minlength=n_atoms)
-    last = _filled(n_atoms, np.nan)
+    last = filled(n_atoms, np.nan)
     np.fmax.at(last, at, r)
-    nearest = _filled(n_atoms, np.nan)
+    nearest = filled(n_atoms, np.nan)
     np.fmin.at(nearest, both_i[usable2], ratio2[usable2])
     out = usable2 & ~bonded2
-    first_out = _filled(n_atoms, np.nan)
+    first_out = filled(n_atoms, np.nan)
     np.fmin.at(first_out, both_i[out], ratio2[out])
     fragile = np.zeros(n_atoms, dtype=bool)
     fragile[c.i[c.fragile]] = True

@@ -202,8 +202,7 @@ def count(
 
 
 # target() by atomic number: electrons that complete the shell.
-_TARGET_BY_Z = np.full(128, 8.0)
-_TARGET_BY_Z[[1, 2]] = 2.0
+_TARGET_BY_Z = np.array([float(target(sym)) for sym in elements.symbols()])
 _TARGET_BY_Z.setflags(write=False)
 
 

@@ -12,6 +12,7 @@ import numpy as np
 
 from . import elements
 from . import findings as F
+from .arrays import first_index
 from .bonds import Contacts, Criterion, find_contacts, rescaled
 from .count import PAULING_K, Count, count, target
 from .motifs import Component, anion_components, find_clusters, wade
@@ -52,11 +53,7 @@ def _fmt(x: float) -> str:
 def _first_atoms(c: Count) -> list[int]:
     """Index of the first atom of every group of a count (the atom whose
     label names the group)."""
-    first = [-1] * len(c.groups)
-    for k, g in enumerate(c.group_of.tolist()):
-        if first[g] < 0:
-            first[g] = k
-    return first
+    return first_index(c.group_of.tolist())
 
 
 def diagnose(crystal, contacts, sites, c, fragile_sites, anions=None, valence=None, criterion=None):
@@ -356,10 +353,8 @@ def _metallic(case: Case) -> list[F.Finding]:
     coord = c.aa_bonds[an]
     if coord.size and float(np.mean(coord)) >= 6:
         return [F.Metallic(rank=0.7, why=f"anions have {float(np.mean(coord)):.1f} anion neighbours on average: a close-packed metallic arrangement", evidence=ev)]
-    tab, syms = elements.table(), elements.symbols()
-    groups = {tab[syms[k]]["group"] for k in set(cr.numbers[an].tolist())}
     w_d = float(np.sum(cr.occupancy[~an & elements.d_block_by_z()[cr.numbers]]))
-    if max(groups) <= 14 and c.residual > 0 and w_d > 0:
+    if c.residual > 0 and w_d > 0 and _top_anion_group(case) <= 14:
         return [F.Metallic(rank=0.7, why="group 13-14 anions with transition metals and electrons left over: an intermetallic", evidence=ev)]
     if c.n_anion and w_d / c.n_anion >= 2:
         return [F.Metallic(rank=0.7, why=f"metal-rich: {w_d / c.n_anion:.2g} transition-metal atoms per anion, bonded among themselves beyond what the count resolves", evidence=ev)]
@@ -373,15 +368,17 @@ def _metallic(case: Case) -> list[F.Finding]:
     return []
 
 
+def _top_anion_group(case: Case) -> int:
+    """The highest periodic-table group among the anion elements."""
+    tab, syms = elements.table(), elements.symbols()
+    return max(tab[syms[k]]["group"] for k in set(case.crystal.numbers[case.count.role].tolist()))
+
+
 def _polar_intermetallic(case: Case) -> list[F.Finding]:
     """Group 13-14 anions with electrons left over but no transition metal: a
     Zintl phase gone metallic, or a mistyped site; the probes still run."""
-    c, cr = case.count, case.crystal
-    if c.residual <= 0:
-        return []
-    tab, syms = elements.table(), elements.symbols()
-    groups = {tab[syms[k]]["group"] for k in set(cr.numbers[c.role].tolist())}
-    if max(groups) <= 14:
+    c = case.count
+    if c.residual > 0 and _top_anion_group(case) <= 14:
         return [F.Metallic(rank=0.5, why="the anions are group 13-14 elements with electrons left over: possibly a polar intermetallic",
                            evidence={"vec_anion": round(c.vec_anion, 3)})]
     return []

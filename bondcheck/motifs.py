@@ -112,9 +112,19 @@ def _rank(vectors: set[tuple[int, int, int]]) -> int:
 
 def formula(numbers) -> str:
     """Element counts in atomic-number order: 'S2', 'Ga3Ge7'."""
-    syms = elements.symbols()
     zs, counts = np.unique(numbers, return_counts=True)
-    return "".join(f"{syms[z]}{c if c > 1 else ''}" for z, c in zip(zs, counts))
+    return _formula_text(dict(zip(zs.tolist(), counts.tolist())))
+
+
+def _formula_text(per_z: dict[int, int]) -> str:
+    """'Ga3Ge7' from {atomic number: count}, in atomic-number order."""
+    syms = elements.symbols()
+    return "".join(f"{syms[z]}{n if n > 1 else ''}" for z, n in sorted(per_z.items()))
+
+
+def _lone_anion(atom: int, z: int) -> Component:
+    """An anion without anion-anion bonds: a component of its own."""
+    return Component([atom], 0, "isolated anion", elements.symbols()[z], 0, 0.0)
 
 
 def anion_components(crystal, contacts, count) -> list[Component]:
@@ -123,12 +133,11 @@ def anion_components(crystal, contacts, count) -> list[Component]:
     anions = np.flatnonzero(count.role)
     if anions.size == 0:
         return []
-    syms = elements.symbols()
     atom_list = anions.tolist()
     z_list = crystal.numbers[anions].tolist()
     aa = count.aa_bond
     if not aa.any():  # no anion-anion bond: every anion is a component of its own
-        return [Component([a], 0, "isolated anion", syms[z], 0, 0.0) for a, z in zip(atom_list, z_list)]
+        return [_lone_anion(a, z) for a, z in zip(atom_list, z_list)]
     index = -np.ones(crystal.natoms, dtype=np.int64)
     index[anions] = np.arange(anions.size)
     sel = np.flatnonzero(contacts.bonded)[aa]  # the anion-anion bonds among all contacts
@@ -154,10 +163,10 @@ def anion_components(crystal, contacts, count) -> list[Component]:
     for cid in range(ncomp):
         m = members[cid]
         if len(m) == 1 and not edges[cid]:  # the common case: a lone anion
-            out.append(Component([atom_list[m[0]]], 0, "isolated anion", syms[z_list[m[0]]], 0, 0.0))
+            out.append(_lone_anion(atom_list[m[0]], z_list[m[0]]))
             continue
         d = [deg[k] for k in m]
-        text = "".join(f"{syms[z]}{n if n > 1 else ''}" for z, n in sorted(per_z[cid].items()))
+        text = _formula_text(per_z[cid])
         comp = Component([atom_list[k] for k in m], dims[cid], "", text, edges[cid], sum(d) / len(d))
         comp.motif = _name(comp, d)
         out.append(comp)

@@ -25,6 +25,7 @@ import gemmi
 import numpy as np
 
 from . import limits
+from .arrays import filled
 from .record import Crystal, StructureError
 
 __all__ = ["read", "read_blocks", "iter_structure_files", "read_cif_bytes", "species", "cell_matrix",
@@ -1219,12 +1220,6 @@ _SITE_TAGS = ("_atom_site_fract_x", "_atom_site_fract_y", "_atom_site_fract_z", 
               "_atom_site_type_symbol", "_atom_site_occupancy", "_atom_site_calc_flag")
 
 
-def _filled(n: int, value: float) -> np.ndarray:
-    a = np.empty(n)
-    a.fill(value)
-    return a
-
-
 def _crystal_from_block(block, column, source: str, max_atoms: int = limits.MAX_ATOMS) -> Crystal:
     """The crystal of one data block; ``column`` is the block's :func:`_atom_column`."""
     tags, values = _atom_loop(block, column)
@@ -1347,7 +1342,7 @@ def _occupancies(occ_raw: list[str] | None, nrow: int, labels: list[str]) -> np.
             v = 1.0
         if not MIN_OCCUPANCY <= v <= 1.0 + OCC_TOL:
             _check_occupancy(np.array([v]), labels[:1])
-        return _filled(nrow, min(v, 1.0))
+        return filled(nrow, min(v, 1.0))
     occ = _floats(occ_raw)
     occ[np.isnan(occ)] = 1.0  # '?' or '.': not given
     if not (occ.min() >= MIN_OCCUPANCY and occ.max() <= 1.0 + OCC_TOL):
@@ -1375,7 +1370,7 @@ def _elements(block, types: list[str] | None, labels: list[str]) -> tuple[np.nda
                 raise StructureError(
                     f"cannot tell the element of site '{label}' (no _atom_site_type_symbol)")
             znum[label] = z
-        return np.array([znum[v] for v in labels], dtype=np.int64), _filled(n, math.nan)
+        return np.array([znum[v] for v in labels], dtype=np.int64), filled(n, math.nan)
 
     table = {}
     oxidation = None
@@ -1409,7 +1404,7 @@ def _elements(block, types: list[str] | None, labels: list[str]) -> tuple[np.nda
         types = range(n)
     numbers = np.array([table[t][0] for t in types], dtype=np.int64)
     if not charged:
-        return numbers, _filled(n, math.nan)
+        return numbers, filled(n, math.nan)
     return numbers, np.array([table[t][1] for t in types], dtype=np.float64)
 
 

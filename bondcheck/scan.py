@@ -1,9 +1,10 @@
 """Scan whole collections: in parallel, resumable, with progress.
 
-The work for one entry is :func:`check_entry`: read it
+The work for a chunk of entries is :func:`check_entries`: read them
 (:func:`bondcheck.sources.load_crystals`) and run
-:func:`bondcheck.api.check_crystal` on each crystal it holds.  Everything else
-here moves entries to that function and rows back:
+:func:`bondcheck.api.check_crystals` on the crystals they hold (:func:`check_entry`
+for one entry).  Everything else here moves entries to that function and rows
+back:
 
 * the main process enumerates the inputs lazily, reads each entry's bytes and
   hashes them; work already in the results store (same content, same
@@ -12,7 +13,8 @@ here moves entries to that function and rows back:
   few chunks per worker are in flight, so memory stays flat however long the
   scan;
 * a worker still busy with one entry after ``timeout`` seconds is killed and
-  replaced; the entry gets a row with status ``timeout``;
+  replaced; the entry gets a row with status ``timeout`` (a chunk that
+  overruns is checked again entry by entry, to find the one at fault);
 * rows are written to the store as they arrive and streamed to the output
   files; a :class:`Tally` keeps what the closing summary needs.
 
@@ -36,7 +38,7 @@ from typing import Callable, Iterable, Iterator
 from .sources import Entry, iter_entries, load_crystals
 from .store import Store, specific
 
-__all__ = ["scan", "Scanner", "Tally", "check_entry", "settings_key", "open_writer",
+__all__ = ["scan", "Scanner", "Tally", "check_entry", "check_entries", "settings_key", "open_writer",
            "read_rows", "summarize", "render_summary", "EXIT_OK", "EXIT_FLAGGED", "EXIT_USAGE"]
 
 EXIT_OK, EXIT_FLAGGED, EXIT_USAGE, EXIT_INTERRUPTED = 0, 1, 2, 130
@@ -195,7 +197,7 @@ def _failed_rows(message: str) -> list[dict]:
 
 
 # --------------------------------------------------------------------------
-# executors: where check_entry runs
+# executors: where check_entries runs
 # --------------------------------------------------------------------------
 
 # (entry, status, rows, blob or None, row texts or None)
@@ -405,14 +407,7 @@ class _Processes:
 
     def _replace(self, w: _Worker, done: list[Completion], why: str) -> None:
         now = time.monotonic()
-        if why == "timeout":
-            w.proc.kill()
-        w.proc.join(5)
-        if w.proc.is_alive():
-            w.proc.kill()
-            w.proc.join()
-        code = w.proc.exitcode
-        self._discard(w)
+        code = self._stop(w, kill=why == "timeout")
         if w.out and w.out[0].batched:
             # The worker was on a batch: which entry is to blame is unknown,
             # so every entry it held is checked again, one at a time.
@@ -436,7 +431,7 @@ class _Processes:
         if self.deaths > 3 * len(self.workers) + 10:
             raise RuntimeError("worker processes keep stopping without finishing any entry; "
                                "run with --executor inline to see the error")
-        self.workers[self.workers.index(w)] = self._spawn()
+        self._respawn(w)
 
     def _renew(self, w: _Worker) -> _Worker:
         """Replace an idle worker that has done its share with a fresh one."""
@@ -444,11 +439,23 @@ class _Processes:
             w.tasks.put(None)
         except (OSError, ValueError):
             pass
+        self._stop(w)
+        return self._respawn(w)
+
+    def _stop(self, w: _Worker, kill: bool = False) -> int | None:
+        """End a worker (at once with kill, else within 5 s of its last
+        task) and let go of its pipes; returns its exit code."""
+        if kill:
+            w.proc.kill()
         w.proc.join(5)
         if w.proc.is_alive():
             w.proc.kill()
             w.proc.join()
         self._discard(w)
+        return w.proc.exitcode
+
+    def _respawn(self, w: _Worker) -> _Worker:
+        """A fresh worker in w's place."""
         fresh = self._spawn()
         self.workers[self.workers.index(w)] = fresh
         return fresh

@@ -15,6 +15,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from .arrays import first_index, first_seen
 from .record import Crystal
 
 SYMPREC = 0.01  # angstrom
@@ -135,7 +136,7 @@ def group_sites(crystal: Crystal, contacts) -> Sites:
     a = np.concatenate([pi, pj])
     b = np.concatenate([pj, pi])
     dd = np.concatenate([d, d])
-    tcode = _first_seen(types.tolist())
+    tcode = first_seen(types.tolist())
     nt = max(tcode) + 1
     tcode = np.array(tcode, dtype=np.int64)
     tb = tcode[b]
@@ -144,8 +145,8 @@ def group_sites(crystal: Crystal, contacts) -> Sites:
     ncont = np.bincount(a, minlength=npos)
     # Classes: own type and the number of contacts to each partner type.
     partners = np.bincount(a * nt + tb, minlength=npos * nt).reshape(npos, nt)
-    cls = _first_seen(_rows(tcode, partners))
-    leader = _first_index(cls)
+    cls = first_seen(_rows(tcode, partners))
+    leader = first_index(cls)
     cls = np.array(cls, dtype=np.int64)
     # Distances in a padded table (column: the contact's place among the
     # atom's contacts): within a class the rows line up.
@@ -167,7 +168,7 @@ def group_sites(crystal: Crystal, contacts) -> Sites:
             best = f.copy()
             np.minimum.at(best, r[agree], m[agree])
             first[f] = best
-    label = _first_seen(first.tolist())
+    label = first_seen(first.tolist())
     ngroup = max(label) + 1
     label = np.array(label, dtype=np.int64)
     # Refine: the numbers of partners in each group must agree too (there is
@@ -177,14 +178,13 @@ def group_sites(crystal: Crystal, contacts) -> Sites:
         keys = _rows(label, counts)
         if len(set(keys)) == ngroup:
             break
-        label = _first_seen(keys)
+        label = first_seen(keys)
         ngroup = max(label) + 1
         label = np.array(label, dtype=np.int64)
     # Labels count up in order of first appearance: they are the site numbers.
     # The representative is the first entry at the group's first position.
-    first_pos = _first_index(label.tolist())
-    pos_list = pos_index.tolist()
-    first_entry = dict(zip(reversed(pos_list), range(len(pos_list) - 1, -1, -1)))
+    first_pos = first_index(label.tolist())
+    first_entry = first_index(pos_index.tolist())  # per position
     return Sites(
         site=label[pos_index],
         representative=np.array([first_entry[p] for p in first_pos], dtype=np.int64),
@@ -200,16 +200,3 @@ def _rows(first_column: np.ndarray, rest: np.ndarray) -> list[bytes]:
     when the rows are equal."""
     m = np.concatenate([first_column[:, None], rest], axis=1).astype(np.int64, copy=False)
     return m.view(np.dtype((np.void, 8 * m.shape[1]))).ravel().tolist()
-
-
-def _first_seen(keys) -> list[int]:
-    """Number equal keys 0, 1, 2, ... in order of first appearance."""
-    seen: dict = {}
-    return [seen.setdefault(key, len(seen)) for key in keys]
-
-
-def _first_index(labels: list[int]) -> list[int]:
-    """The index of the first appearance of each number of _first_seen."""
-    # Walking backwards, the last index written for a number is its first.
-    first = dict(zip(reversed(labels), range(len(labels) - 1, -1, -1)))
-    return [first[n] for n in range(len(first))]
