@@ -5,6 +5,8 @@ compare the JSON results with a saved run.
     python benchmarks/compare_results.py compare /tmp/bc_baseline.json
     python benchmarks/compare_results.py compare /tmp/bc_baseline.json --count-only
     python benchmarks/compare_results.py compare /tmp/bc_baseline.json --fast
+    python benchmarks/compare_results.py save /tmp/bc_scan.json --no-symmetry
+    python benchmarks/compare_results.py compare /tmp/bc_scan.json --no-symmetry
 
 The file set is the first 1500 files of ../shared/corpus/mp-relaxed (sorted by
 name) plus all of ../shared/corpus/prototypes.  Reading can be frozen
@@ -18,7 +20,9 @@ CC, residual and the per-site count values), for when findings change for
 other reasons.  --fast runs the candidate with Options(symmetry=False) and
 compares the count fields, ignoring Wyckoff letters, multiplicities and the
 space group (which that mode does not determine); sites of equal environment
-that the fast mode merges are compared by their distinct rows.
+that the fast mode merges are compared by their distinct rows.  --no-symmetry
+saves and compares with Options(symmetry=False), the scan's default, on every
+field: the guard for speed work on that path.
 """
 from __future__ import annotations
 
@@ -144,12 +148,14 @@ def main(argv=None) -> int:
     ap.add_argument("--frozen", help="pickle of read crystal records (written on first use)")
     ap.add_argument("--count-only", action="store_true", help="compare only the count fields")
     ap.add_argument("--fast", action="store_true", help="check with Options(symmetry=False)")
+    ap.add_argument("--no-symmetry", action="store_true",
+                    help="save and compare with Options(symmetry=False), every field")
     ap.add_argument("--show", type=int, default=20, help="differences to print")
     args = ap.parse_args(argv)
     if not CORPUS.is_dir():
         print(f"skipped: {CORPUS} is absent", file=sys.stderr)
         return 0
-    results = json.loads(json.dumps(run(args.frozen, fast=args.fast)))
+    results = json.loads(json.dumps(run(args.frozen, fast=args.fast or args.no_symmetry)))
     if args.action == "save":
         Path(args.baseline).write_text(json.dumps(results))
         print(f"saved {len(results)} results to {args.baseline}")
