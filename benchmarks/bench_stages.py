@@ -1,0 +1,112 @@
+"""CPU time per file of each stage as a scan worker runs them: 32 files read,
+then each stage over all their structures before the next stage
+(bondcheck.api.check_crystals does the same), with the scan's default
+Options(symmetry=False).
+
+    python benchmarks/bench_stages.py              # first 3000 files of mp-relaxed
+    python benchmarks/bench_stages.py --limit 1000
+
+Prints ms per file for read, bonds (validation, neighbour list, criterion),
+sites (grouping by environment), count, per-atom values, diagnose (which
+counts variants of the structure again) and result rows, then the whole of
+check_crystals plus Result.to_dict for comparison.  The run is made twice and
+the second is reported (the first warms caches and imports).  Skips with a
+message when the corpus is absent.
+"""
+from __future__ import annotations
+
+import argparse
+import sys
+import time
+from pathlib import Path
+
+CORPUS = Path(__file__).resolve().parents[1] / ".." / "shared" / "corpus"
+STAGES = ("read", "bonds", "sites", "count", "per_atom", "diagnose", "rows")
+
+
+def run(files, opts, spent) -> None:
+    from bondcheck import api
+    from bondcheck.read import read
+    from bondcheck.record import StructureError
+
+    clk = time.process_time
+    for s in range(0, len(files), 32):
+        t = clk()
+        cs = []
+        for f in files[s:s + 32]:
+            try:
+                cs.extend(read(f))
+            except StructureError:
+                pass
+        spent["read"] += clk() - t
+        t = clk()
+        con = [api._bonds_stage(c, opts) for c in cs]
+        spent["bonds"] += clk() - t
+        t = clk()
+        si = [api._sites_stage(c, k, opts) for c, k in zip(cs, con)]
+        spent["sites"] += clk() - t
+        t = clk()
+        cn = [api.count(c, k, s, opts.anions, opts.valence) for c, k, s in zip(cs, con, si)]
+        spent["count"] += clk() - t
+        t = clk()
+        pa = [api.per_atom(k, c.natoms, c.occupancy) for c, k in zip(cs, con)]
+        fl = [api._fragile_sites(c, k, s, n, opts, p[4]) for c, k, s, n, p in zip(cs, con, si, cn, pa)]
+        spent["per_atom"] += clk() - t
+        t = clk()
+        for c, k, s, n, f in zip(cs, con, si, cn, fl):
+            api.diagnose(c, k, s, n, f, opts.anions, opts.valence, opts.criterion)
+        spent["diagnose"] += clk() - t
+        t = clk()
+        for c, s, n, p in zip(cs, si, cn, pa):
+            api.formula_of(c)
+            api._site_rows(c, s, n, *p)
+        spent["rows"] += clk() - t
+
+
+def whole(files, opts) -> float:
+    from bondcheck.api import check_crystals
+    from bondcheck.read import read
+    from bondcheck.record import StructureError
+
+    t0 = time.process_time()
+    for s in range(0, len(files), 32):
+        cs = []
+        for f in files[s:s + 32]:
+            try:
+                cs.extend(read(f))
+            except StructureError:
+                pass
+        for r in check_crystals(cs, opts):
+            r.to_dict()
+    return time.process_time() - t0
+
+
+def main(argv=None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
+    ap.add_argument("--limit", type=int, default=3000, help="first N files of mp-relaxed (sorted by name); 0 = all")
+    args = ap.parse_args(argv)
+    folder = CORPUS / "mp-relaxed"
+    if not folder.is_dir():
+        print(f"skipped: {folder} is absent", file=sys.stderr)
+        return 0
+    from bondcheck.api import Options
+
+    files = sorted(str(p) for p in folder.glob("*.cif"))
+    if args.limit:
+        files = files[: args.limit]
+    opts = Options(symmetry=False)
+    for _ in range(2):
+        spent = dict.fromkeys(STAGES, 0.0)
+        run(files, opts, spent)
+    n = len(files)
+    total = sum(spent.values())
+    for k, v in spent.items():
+        print(f"{k:9s} {v / n * 1e3:6.3f} ms/file  {100 * v / total:5.1f} %")
+    print(f"sum       {total / n * 1e3:6.3f} ms/file  {n / total:6.0f} files/s")
+    w = whole(files, opts)
+    print(f"check_crystals + to_dict: {w / n * 1e3:6.3f} ms/file  {n / w:6.0f} files/s (CPU, reading included)")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
