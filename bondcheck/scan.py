@@ -238,7 +238,10 @@ class _Inline:
 
 
 def _worker_main(tasks, conn, job: tuple, main_pid: int) -> None:
-    """Loop of a worker process: chunks of entries in, one message per entry out."""
+    """Loop of a worker process: chunks of entries in, one message per chunk
+    out (the list of its entries' answers, in order: a batch is checked as a
+    whole, so nothing is finished earlier that a per-entry message could
+    save; a chunk of one is the single-entry case)."""
     import queue
     import signal
 
@@ -255,11 +258,11 @@ def _worker_main(tasks, conn, job: tuple, main_pid: int) -> None:
             return
         if chunk is None:
             return
-        for msg in _answers(chunk, job):
-            try:
-                conn.send(msg)
-            except (BrokenPipeError, OSError):
-                return
+        msg = _answers(chunk, job)
+        try:
+            conn.send(msg)
+        except (BrokenPipeError, OSError):
+            return
 
 
 def _alive(pid: int) -> bool:
@@ -393,14 +396,15 @@ class _Processes:
         """Take every answer waiting on a worker's pipe; False if the pipe broke."""
         try:
             while w.ready.poll(0):
-                seq, *answer = w.conn.recv()
-                e = w.out.popleft()
-                if e.seq != seq:  # cannot happen: a worker answers in order
-                    raise RuntimeError(f"worker answered entry {seq}, expected {e.seq}")
+                answers = w.conn.recv()  # one chunk's answers
+                for seq, *answer in answers:
+                    e = w.out.popleft()
+                    if e.seq != seq:  # cannot happen: a worker answers in order
+                        raise RuntimeError(f"worker answered entry {seq}, expected {e.seq}")
+                    done.append((e, *answer))
                 w.last = time.monotonic()
-                w.done += 1
+                w.done += len(answers)
                 self.deaths = 0
-                done.append((e, *answer))
         except (EOFError, OSError):
             return False
         return True
