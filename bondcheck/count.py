@@ -204,6 +204,13 @@ def count(
 # target() by atomic number: electrons that complete the shell.
 _TARGET_BY_Z = np.array([float(target(sym)) for sym in elements.symbols()])
 _TARGET_BY_Z.setflags(write=False)
+# Per-element facts as plain Python sets and lists, so that a structure's
+# static quantities need no numpy scalar look-ups.
+_SYMBOLS = elements.symbols()
+_CAPABLE_Z = frozenset(np.flatnonzero(elements.capable_by_z()).tolist())
+_NOT_EP_Z = frozenset(np.flatnonzero(~elements.electropositive_by_z()).tolist())
+# (Z, symbol, block) per atomic number, as a group's element in `_Static`.
+_GROUP_ELEMENT = {k: (k, sym, elements.block(sym)) for k, sym in enumerate(_SYMBOLS) if k}
 
 
 @dataclass(slots=True)
@@ -237,9 +244,8 @@ def _static(crystal: Crystal, sites: Sites, valence: dict[str, int]) -> _Static:
     last = getattr(_LOCAL, "static", None)
     if last is not None and last[0] == key:
         return last[1]
-    syms = elements.symbols()
     zset = set(z.tolist())
-    present = sorted(syms[k] for k in zset)
+    present = sorted([_SYMBOLS[k] for k in zset])
     val = elements.valence_by_z()
     if valence:
         val = val.copy()
@@ -249,16 +255,14 @@ def _static(crystal: Crystal, sites: Sites, valence: dict[str, int]) -> _Static:
     capable_atom = elements.capable_by_z()[z]
     # Atoms that are not electropositive (the only cations that may bond to each other).
     not_ep_atom = ~elements.electropositive_by_z()[z]
-    capable_z = frozenset(k for k in zset if elements.capable_by_z()[k])
-    not_ep_z = frozenset(k for k in zset if not elements.electropositive_by_z()[k])
+    capable_z = _CAPABLE_Z & zset
+    not_ep_z = _NOT_EP_Z & zset
     # Groups: one per (site, element), in order of site, then element.
-    gkey = (site.astype(np.int64) * 128 + z).tolist()
-    uniq = sorted(set(gkey))
-    index = {k: g for g, k in enumerate(uniq)}
-    group_of = np.array([index[k] for k in gkey], dtype=np.intp)
+    gkey = site.astype(np.int64) * 128 + z
+    uniq = sorted(set(gkey.tolist()))
+    group_of = np.searchsorted(np.array(uniq), gkey)  # keys are unique and sorted
     groups = [(k // 128, k % 128) for k in uniq]
-    facts = {k: (k, *_element_facts(k)[:2]) for k in zset}
-    group_elements = [facts[zz] for _site, zz in groups]
+    group_elements = [_GROUP_ELEMENT[zz] for _site, zz in groups]
     group_weight = np.bincount(group_of, weights=occ, minlength=len(uniq)).tolist()
     group_size = np.bincount(group_of, minlength=len(uniq))
     occ_target = occ * _TARGET_BY_Z[z]
@@ -295,18 +299,23 @@ class _Context:
         syms = elements.symbols()
         capable = elements.capable_by_z()
         anions = list(start)
+        # The element pairs of the bonds, each once, in order of first bond:
+        # the growth below depends only on which pairs occur and on that order
+        # (a later bond of the same pair can add nothing), and a structure has
+        # far fewer pairs than bonds.
         z = self.crystal.numbers
-        zi, zj = z[self.bi], z[self.bj]
-        # Only bonds between different elements, close in electronegativity,
-        # one of them anion-capable, can bring in an anion; they are met in
-        # bond order.
-        near = (zi != zj) & (np.abs(en[zi] - en[zj]) < 0.5) & (capable[zi] | capable[zj])
-        pairs = list(zip(zi[near].tolist(), zj[near].tolist()))
+        pairs = list(dict.fromkeys(zip(z[self.bi].tolist(), z[self.bj].tolist())))
+        # Only pairs of different elements, close in electronegativity, one of
+        # them anion-capable, can bring in an anion; they are met in bond order.
+        near = [
+            (a, b) for a, b in pairs
+            if a != b and abs(en[a] - en[b]) < 0.5 and (capable[a] or capable[b])
+        ]
         changed = True
         while changed:
             changed = False
             an_z = {nums[a] for a in anions}
-            for a, b in pairs:
+            for a, b in near:
                 if a in an_z and b not in an_z:
                     y = b
                 elif b in an_z and a not in an_z:
@@ -319,9 +328,7 @@ class _Context:
                     changed = True
         # Anion-capable elements with no bond to any anion are isolated anions
         # (Cl- beside water molecules), not cations.
-        is_anion = np.zeros(128, dtype=bool)
-        is_anion[list(an_z)] = True
-        bonded_to_anion = set(zj[is_anion[zi]].tolist()) | set(zi[is_anion[zj]].tolist())
+        bonded_to_anion = {b for a, b in pairs if a in an_z} | {a for a, b in pairs if b in an_z}
         for sy in self.static.present:
             zz = nums[sy]
             if sy not in anions and elements.can_be_anion(sy) and zz not in bonded_to_anion:
