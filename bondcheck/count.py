@@ -171,8 +171,10 @@ def count(
     if not candidates:
         return None
     tried = []
+    # A closure that needs an implausible split does not count as closing, so
+    # none is looked for (close_invalid=False).
     for an, why in candidates:
-        c = ctx.evaluate(an, why)
+        c = ctx.evaluate(an, why, close_invalid=False)
         tried.append(c)
         # Costs are never negative and the candidates grow one anion element
         # at a time, so a valid closure of cost 0 is the choice below: the
@@ -194,10 +196,7 @@ def count(
             c.reason = why
             break
     else:
-        c = ctx.evaluate(an, why)
-    if not c.valid:
-        # A closure that needs an implausible split does not count as closing.
-        c.closure = Closure(False)
+        c = ctx.evaluate(an, why, close_invalid=False)
     return c
 
 
@@ -340,7 +339,11 @@ class _Context:
             "electronegativity difference below 0.5; no split closes the count"
         )
 
-    def evaluate(self, anions: list[str], why: str) -> Count:
+    def evaluate(self, anions: list[str], why: str, close_invalid: bool = True) -> Count:
+        """The count of one anion set. close_invalid: look for a closure of an
+        implausible split too (the user's anion set is reported as it counts);
+        without it such a split gets Closure(False), as the choice among the
+        candidates gives it whatever it closes to."""
         cr = self.crystal
         z = cr.numbers
         nums = elements.numbers()
@@ -376,21 +379,24 @@ class _Context:
             cc &= self.bd <= CC_BRIDGE * np.minimum(mean_ca[bi], mean_ca[bj])
             cc_any = bool(cc.any())
 
+        # Per-atom homonuclear-role bonds: anion-anion for anions, cation-cation
+        # for cations (with no cation-cation bond, ic and jc are empty).
+        ia, ja = bi[aa], bj[aa]
+        if cc_any:
+            ic, jc = bi[cc], bj[cc]
+            ends, partner = [ia, ja, ic, jc], [ja, ia, jc, ic]
+        else:
+            ends, partner = [ia, ja], [ja, ia]
         n_anion = float(occ[role].sum())
         shell = float(self.static.occ_target[role].sum())
         aa_ends = 2.0 * float(bw[aa].sum())
         cc_e = 2.0 * float(bw[cc].sum()) if cc_any else 0.0
+        per = np.bincount(np.concatenate(ends), weights=occ[np.concatenate(partner)], minlength=n)
         vec = self.static.electrons / n_anion
         mean_target = shell / n_anion
         aa_obs = aa_ends / n_anion
         cc_obs = cc_e / n_anion
         residual = vec - mean_target + aa_obs - cc_obs
-
-        # Per-atom homonuclear-role bonds: anion-anion for anions, cation-cation for cations.
-        ia, ja, ic, jc = bi[aa], bj[aa], bi[cc], bj[cc]
-        per = np.bincount(
-            np.concatenate([ia, ja, ic, jc]), weights=np.concatenate([occ[ja], occ[ia], occ[jc], occ[ic]]), minlength=n
-        )
 
         # Validity: a p-block cation bonded to another cation of a different
         # element should rather be an anion.
@@ -415,7 +421,10 @@ class _Context:
                 sym = elements.symbols()[int(z[np.flatnonzero(lonely)[0]])]
                 note = f"{sym} would be a cation without anion neighbours"
 
-        closure = self._close(_Split(anion_z, role, aa, ca, per, cc_any), residual * n_anion + cc_e, n_anion)
+        if valid or close_invalid:
+            closure = self._close(_Split(anion_z, role, aa, ca, per, cc_any), residual * n_anion + cc_e, n_anion)
+        else:
+            closure = Closure(False)
         cations = [s for s in self.static.present if s not in anions]
         return Count(
             anions=list(anions),
