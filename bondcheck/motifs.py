@@ -46,11 +46,17 @@ def periodic_components(n: int, bi, bj, shift) -> tuple[np.ndarray, dict[int, in
     shifted by shift[k] cells. Returns (component id per atom, {id: dim}).
     (ase's RDA class counts a finite cluster that crosses the cell boundary as
     two components, which is right for its histogram but not for naming motifs.)
-    The graphs are small: plain Python lists and tuples walk them faster than
-    numpy arrays would.
     """
+    comp, dims = _components(n, np.asarray(bi).tolist(), np.asarray(bj).tolist(), np.asarray(shift).tolist())
+    return np.array(comp, dtype=np.int64), dims
+
+
+def _components(n: int, bi: list[int], bj: list[int], shift: list) -> tuple[list[int], dict[int, int]]:
+    """`periodic_components` over plain lists, returning a list of component
+    ids. The graphs are small: plain Python lists and tuples walk them faster
+    than numpy arrays would."""
     adj: list[list[tuple[int, int, int, int]]] = [[] for _ in range(n)]
-    for a, b, (x, y, z) in zip(np.asarray(bi).tolist(), np.asarray(bj).tolist(), np.asarray(shift).tolist()):
+    for a, b, (x, y, z) in zip(bi, bj, shift):
         adj[a].append((b, x, y, z))
         adj[b].append((a, -x, -y, -z))
     comp = [-1] * n
@@ -84,7 +90,7 @@ def periodic_components(n: int, bi, bj, shift) -> tuple[np.ndarray, dict[int, in
                         cycles.add(d)
         dims[cid] = _rank(cycles)
         cid += 1
-    return np.array(comp, dtype=np.int64), dims
+    return comp, dims
 
 
 def _rank(vectors: set[tuple[int, int, int]]) -> int:
@@ -130,24 +136,26 @@ def _lone_anion(atom: int, z: int) -> Component:
 def anion_components(crystal, contacts, count) -> list[Component]:
     """Connected components of the anion-anion bond graph (fully occupied
     view: every entry is a node)."""
-    anions = np.flatnonzero(count.role)
+    # (x.nonzero()[0] is np.flatnonzero(x) for a 1-D array and
+    # np.count_nonzero(x) > 0 is x.any(), both without numpy's Python-level
+    # wrappers, which cost more than the work on these short arrays.)
+    anions = count.role.nonzero()[0]
     if anions.size == 0:
         return []
     atom_list = anions.tolist()
     z_list = crystal.numbers[anions].tolist()
     aa = count.aa_bond
-    if not aa.any():  # no anion-anion bond: every anion is a component of its own
+    if not np.count_nonzero(aa):  # no anion-anion bond: every anion is a component of its own
         return [_lone_anion(a, z) for a, z in zip(atom_list, z_list)]
-    index = -np.ones(crystal.natoms, dtype=np.int64)
-    index[anions] = np.arange(anions.size)
-    sel = np.flatnonzero(contacts.bonded)[aa]  # the anion-anion bonds among all contacts
-    bi, bj = index[contacts.i[sel]], index[contacts.j[sel]]
-    comp_of, dims = periodic_components(anions.size, bi, bj, contacts.shift[sel])
+    sel = contacts.bonded.nonzero()[0][aa]  # the anion-anion bonds among all contacts
+    index = {a: k for k, a in enumerate(atom_list)}  # node number of each anion
+    bi = [index[a] for a in contacts.i[sel].tolist()]
+    bj = [index[a] for a in contacts.j[sel].tolist()]
+    comp_list, dims = _components(anions.size, bi, bj, contacts.shift[sel].tolist())
     ncomp = len(dims)
     deg = [0] * anions.size
     edges = [0] * ncomp
-    comp_list = comp_of.tolist()
-    for i, j in zip(bi.tolist(), bj.tolist()):
+    for i, j in zip(bi, bj):
         deg[i] += 1
         deg[j] += 1
         edges[comp_list[i]] += 1
