@@ -13,13 +13,14 @@ import math
 import time
 from dataclasses import dataclass, field
 from functools import reduce
+from operator import attrgetter
 from pathlib import Path
 from typing import Any, Iterable, Iterator
 
 import numpy as np
 
 from . import elements
-from .arrays import first_index, first_seen
+from .arrays import filled, first_index, first_seen
 from .bonds import Criterion, find_contacts, per_atom
 from .count import Count, _element_facts, count, target
 from .diagnose import diagnose
@@ -72,25 +73,41 @@ class Result:
     seconds: float = 0.0
 
     def to_dict(self) -> dict[str, Any]:
-        d = {k: getattr(self, k) for k in self.__slots__ if k != "findings"}
+        # The fields in order with 'findings' last.
+        d = dict(zip(_RESULT_KEYS, _result_values(self)))
         d["findings"] = [_finite(f.to_dict() if hasattr(f, "to_dict") else f) for f in self.findings]
         d["seconds"] = round(self.seconds, 5)
         return d
 
 
+_RESULT_KEYS = tuple(k for k in Result.__slots__ if k != "findings")
+_result_values = attrgetter(*_RESULT_KEYS)
+# Values _finite returns as they are.
+_AS_IS = frozenset((str, int, bool, type(None)))
+
+
 def _finite(x):
-    """Evidence with any non-finite float turned into null (JSON has no inf or nan)."""
+    """Evidence with any non-finite float turned into null (JSON has no inf or
+    nan); dicts, lists and tuples are copied, tuples as lists."""
+    if type(x) in _AS_IS:
+        return x
     if isinstance(x, float):
         return x if math.isfinite(x) else None
     if isinstance(x, dict):
-        return {k: _finite(v) for k, v in x.items()}
+        return {k: v if type(v) in _AS_IS else _finite(v) for k, v in x.items()}
     if isinstance(x, (list, tuple)):
-        return [_finite(v) for v in x]
+        return [v if type(v) in _AS_IS else _finite(v) for v in x]
     return x
 
 
 def _r3(x: float | None) -> float | None:
-    return None if x is None or not math.isfinite(x) else round(float(x), 3) + 0.0
+    """x rounded to 3 decimals (0.0 for -0.0); None for None, inf or nan."""
+    if x is None:
+        return None
+    x = float(x)
+    if x.is_integer():  # the usual case: whole numbers round to themselves
+        return x + 0.0
+    return round(x, 3) + 0.0 if math.isfinite(x) else None
 
 
 def formula_of(crystal: Crystal) -> tuple[str, float]:
@@ -274,17 +291,15 @@ def _group_mean(x: np.ndarray, inv: np.ndarray, counts: np.ndarray, crowded: lis
 def _group_extreme(x: np.ndarray, inv: np.ndarray, ng: int, fn) -> np.ndarray:
     """Smallest (fn=np.fmin) or largest (np.fmax) value per group ignoring
     NaN; NaN where a group has none."""
-    out = np.full(ng, np.nan)
+    out = filled(ng, np.nan)
     fn.at(out, inv, x)
     return out
 
 
 def _site_rows(crystal, sites, c: Count | None, coord, nearest, last, first_out, fragile) -> list[dict]:
     """One row per (site, element), in order of the first atom of each."""
-    isfinite = math.isfinite
-
-    def r3_all(values: np.ndarray) -> list[float | None]:  # _r3 of each value
-        return [round(x, 3) + 0.0 if isfinite(x) else None for x in values.tolist()]
+    def r3_all(values: np.ndarray) -> list[float | None]:
+        return [_r3(x) for x in values.tolist()]
 
     # Groups of atoms by (site, element), numbered in order of their first atom.
     keys = list(zip(sites.site.tolist(), crystal.numbers.tolist()))
