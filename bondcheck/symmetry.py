@@ -41,14 +41,17 @@ _DIGITS = np.array([2000 * 2000, 2000, 1], dtype=np.int64)
 
 def _positions(crystal: Crystal):
     """Group entries that share a position; returns (position index per entry,
-    unique fractional positions, type per position)."""
+    unique fractional positions, type per position).  The position index is
+    None when each entry is a position of its own, numbered as the entries."""
     frac = np.mod(crystal.frac, 1.0)
     key = (frac * 2000).round().astype(np.int64) % 2000
     # One integer per rounded position, ordered as the rows (x, y, z) are.
     key = key @ _DIGITS
-    if (crystal.occupancy >= 0.999).all() and len(set(key.tolist())) == key.size:
+    # (np.minimum.reduce(x) is x.min() without the method's Python-level wrapper)
+    occ = crystal.occupancy
+    if (not occ.size or np.minimum.reduce(occ) >= 0.999) and len(set(key.tolist())) == key.size:
         # Fully occupied atoms at distinct positions: each is a position.
-        return np.arange(crystal.natoms), frac, crystal.numbers.astype(np.int64)
+        return None, frac, crystal.numbers.astype(np.int64, copy=False)
     _, pos_of, inverse = np.unique(key, return_index=True, return_inverse=True)
     inverse = inverse.reshape(-1)
     npos = pos_of.size
@@ -72,6 +75,8 @@ def find_sites(crystal: Crystal, symprec: float = SYMPREC) -> Sites:
         spglib.error.OLD_ERROR_HANDLING = False
     pos_index, positions, types = _positions(crystal)
     npos = positions.shape[0]
+    if pos_index is None:
+        pos_index = np.arange(npos)
     ds = None
     try:
         ds = spglib.get_symmetry_dataset((crystal.cell, positions, types), symprec=symprec)
@@ -123,76 +128,112 @@ def group_sites(crystal: Crystal, contacts) -> Sites:
     groups. Sites are numbered in order of their first atom, as with spglib."""
     pos_index, positions, types = _positions(crystal)
     npos = positions.shape[0]
-    pi = pos_index[contacts.i]
-    pj = pos_index[contacts.j]
-    d = contacts.d
+    pi, pj, d = contacts.i, contacts.j, contacts.d
+    if pos_index is not None:
+        pi, pj = pos_index[pi], pos_index[pj]
     if npos < crystal.natoms:
         # Several entries share a position: one contact per pair of positions.
         flip = pi > pj
         key = np.column_stack([np.where(flip, pj, pi), np.where(flip, pi, pj), np.where(flip[:, None], -contacts.shift, contacts.shift)])
         _, sel = np.unique(key, axis=0, return_index=True)
         pi, pj, d = pi[sel], pj[sel], d[sel]
-    # Both ends of every contact, sorted by atom, partner type and distance.
+    # Both ends of every contact (atom a, partner b), in no particular order:
+    # the counts below do not depend on it.
     a = np.concatenate([pi, pj])
     b = np.concatenate([pj, pi])
-    dd = np.concatenate([d, d])
     tcode = first_seen(types.tolist())
     nt = max(tcode) + 1
     tcode = np.array(tcode, dtype=np.int64)
-    tb = tcode[b]
-    order = np.lexsort((dd, tb, a))
-    a, b, dd, tb = a[order], b[order], dd[order], tb[order]
-    ncont = np.bincount(a, minlength=npos)
+    ak = a * nt + tcode[b]  # atom and partner type in one number
     # Classes: own type and the number of contacts to each partner type.
-    partners = np.bincount(a * nt + tb, minlength=npos * nt).reshape(npos, nt)
+    partners = np.bincount(ak, minlength=npos * nt).reshape(npos, nt)
     cls = first_seen(_rows(tcode, partners))
     leader = first_index(cls)
-    cls = np.array(cls, dtype=np.int64)
-    # Distances in a padded table (column: the contact's place among the
-    # atom's contacts): within a class the rows line up.
-    width = int(ncont.max()) if a.size else 0
-    table = np.zeros((npos, width))
-    table[a, np.arange(a.size) - np.searchsorted(a, a)] = dd
-    # Each atom joins the first atom of its class whose distances agree: the
-    # class's first atom, or for the atoms whose distances differ from that
-    # atom's, the first of the earlier atoms of the class that agrees (or
-    # itself), found in blocks of up to 2e6 distance comparisons.
-    first = np.array(leader, dtype=np.int64)[cls]
-    if width:
-        apart = np.flatnonzero(np.abs(table - table[first]).max(axis=1) > ENV_TOL)
-        step = max(1, 2_000_000 // (npos * width))
-        for s in range(0, apart.size, step):
-            f = apart[s : s + step]
-            r, m = np.nonzero((cls[f, None] == cls) & (np.arange(npos) < f[:, None]))
-            agree = np.abs(table[m] - table[f[r]]).max(axis=1) <= ENV_TOL
-            best = f.copy()
-            np.minimum.at(best, r[agree], m[agree])
-            first[f] = best
-    label = first_seen(first.tolist())
-    ngroup = max(label) + 1
-    label = np.array(label, dtype=np.int64)
-    # Refine: the numbers of partners in each group must agree too (there is
-    # nothing to split when every position is a group of its own).
-    while a.size and ngroup < npos:
+    # Groups start as the classes, numbered in order of first appearance as
+    # the groups are.
+    label_list, ngroup, first_pos = cls, len(leader), leader
+    label = cls = np.array(cls, dtype=np.int64)
+    if ngroup < npos:  # (else every position is a class, and a site, of its own)
+        first = None
+        if a.size:
+            # Distances in a padded table, each atom's sorted by partner type
+            # and distance (column: the contact's place among the atom's
+            # contacts): within a class the rows line up.
+            dd = np.concatenate([d, d])
+            order = _order(ak, dd, npos * nt)
+            a_s = a[order]
+            col = np.arange(a.size) - np.searchsorted(a_s, a_s)
+            width = int(np.maximum.reduce(col)) + 1
+            table = np.zeros((npos, width))
+            table[a_s, col] = dd[order]
+            # Each atom joins the first atom of its class whose distances agree: the
+            # class's first atom, or for the atoms whose distances differ from that
+            # atom's, the first of the earlier atoms of the class that agrees (or
+            # itself), found in blocks of up to 2e6 distance comparisons.
+            lead = np.array(leader, dtype=np.int64)[cls]
+            far = np.abs(table - table[lead]) > ENV_TOL
+            if far.any():
+                first = lead
+                apart = np.flatnonzero(far.any(axis=1))
+                step = max(1, 2_000_000 // (npos * width))
+                for s in range(0, apart.size, step):
+                    f = apart[s : s + step]
+                    r, m = np.nonzero((cls[f, None] == cls) & (np.arange(npos) < f[:, None]))
+                    agree = np.abs(table[m] - table[f[r]]).max(axis=1) <= ENV_TOL
+                    best = f.copy()
+                    np.minimum.at(best, r[agree], m[agree])
+                    first[f] = best
+        if first is not None:  # some atoms differ from their class's first
+            label_list = first_seen(first.tolist())
+            ngroup = max(label_list) + 1
+            label = np.array(label_list, dtype=np.int64)
+            first_pos = None  # (the groups' first positions, found when needed)
+    # Refine: the numbers of partners in each group must agree too.  There is
+    # nothing to split when every position is a group of its own, nor when
+    # each type is one group (the counts per group are then the counts per
+    # partner type, equal within a class).
+    while a.size and nt < ngroup < npos:
         counts = np.bincount(a * ngroup + label[b], minlength=npos * ngroup).reshape(npos, ngroup)
-        keys = _rows(label, counts)
-        if len(set(keys)) == ngroup:
+        if first_pos is None:
+            first_pos = first_index(label_list)
+        # (stable when every row equals that of its group's first position)
+        if (counts == counts[np.array(first_pos, dtype=np.int64)[label]]).all():
             break
-        label = first_seen(keys)
-        ngroup = max(label) + 1
-        label = np.array(label, dtype=np.int64)
+        label_list = first_seen(_rows(label, counts))
+        ngroup = max(label_list) + 1
+        label = np.array(label_list, dtype=np.int64)
+        first_pos = None
     # Labels count up in order of first appearance: they are the site numbers.
     # The representative is the first entry at the group's first position.
-    first_pos = first_index(label.tolist())
-    first_entry = first_index(pos_index.tolist())  # per position
+    if first_pos is None:
+        first_pos = first_index(label_list)
+    if pos_index is None:  # each entry a position
+        site, representative = label, np.array(first_pos, dtype=np.int64)
+    else:
+        first_entry = first_index(pos_index.tolist())  # per position
+        site = label[pos_index]
+        representative = np.array([first_entry[p] for p in first_pos], dtype=np.int64)
     return Sites(
-        site=label[pos_index],
-        representative=np.array([first_entry[p] for p in first_pos], dtype=np.int64),
+        site=site,
+        representative=representative,
         multiplicity=None,
         wyckoff=[None] * ngroup,
         spacegroup="",
         spacegroup_number=0,
     )
+
+
+def _order(key: np.ndarray, dist: np.ndarray, nkeys: int) -> np.ndarray:
+    """Order by key (integers below nkeys), then distance.  Ties in both
+    carry equal values, so any order among them serves.  Keys of 16 bits
+    sort by radix; for many contacts, sorting the distances first and then
+    the keys stably beats lexsort, whose cost grows fast with the length."""
+    if nkeys <= 32767:
+        key = key.astype(np.int16)
+        if key.size > 800:
+            o = np.argsort(dist)
+            return o[np.argsort(key[o], kind="stable")]
+    return np.lexsort((dist, key))
 
 
 def _rows(first_column: np.ndarray, rest: np.ndarray) -> list[bytes]:
