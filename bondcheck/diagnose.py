@@ -50,6 +50,13 @@ def _fmt(x: float) -> str:
     return f"{x:.3g}" if abs(x - round(x)) > 1e-6 else str(int(round(x)))
 
 
+def _mean(x: np.ndarray) -> float:
+    """np.mean of a non-empty array (the same float64 sum divided by the
+    count), without np.mean's Python-level steps, which cost more than the
+    sum on these short arrays."""
+    return float(np.add.reduce(x, dtype=np.float64)) / x.size
+
+
 def _first_atoms(c: Count) -> list[int]:
     """Index of the first atom of every group of a count (the atom whose
     label names the group)."""
@@ -192,9 +199,9 @@ def _explanations(case: Case) -> list[F.Finding]:
         blk = elements.block(sym)
         if blk == "p":
             atoms = c.group_of == g
-            nonbond = k - float(np.mean(c.aa_bonds[atoms]))  # electrons kept beyond cation-cation bonds
+            nonbond = k - _mean(c.aa_bonds[atoms])  # electrons kept beyond cation-cation bonds
             if nonbond > 1e-6:
-                w = float(np.sum(crystal.occupancy[atoms]))
+                w = float(crystal.occupancy[atoms].sum())
                 lone.append((crystal.label(first[g]), sym, w * nonbond, first[g]))
         elif blk == "d" or sym in elements.DLIKE_ACTINIDES:
             if k > 1e-6:
@@ -250,13 +257,15 @@ def _explanations(case: Case) -> list[F.Finding]:
 def _pairs(case: Case, mask, shortest: int | None = None):
     crystal, contacts = case.crystal, case.contacts
     syms = elements.symbols()
-    sel = np.flatnonzero(contacts.bonded)[mask]  # mask is over the bonded contacts
-    bi, bj, dd, rat, w = contacts.i[sel], contacts.j[sel], contacts.d[sel], contacts.ratio[sel], contacts.weight[sel]
-    order = np.argsort(rat)
+    sel = contacts.bonded.nonzero()[0][mask]  # mask is over the bonded contacts
+    order = np.argsort(contacts.ratio[sel])
     if shortest:
         order = order[:shortest]
-    pairs = sorted({f"{syms[crystal.numbers[bi[k]]]}-{syms[crystal.numbers[bj[k]]]} {dd[k]:.2f} A" for k in order})
-    return pairs, float(np.sum(w))
+    pick = sel[order]
+    z = crystal.numbers
+    pairs = sorted({f"{syms[a]}-{syms[b]} {d:.2f} A"
+                    for a, b, d in zip(z[contacts.i[pick]].tolist(), z[contacts.j[pick]].tolist(), contacts.d[pick].tolist())})
+    return pairs, float(contacts.weight[sel].sum())
 
 
 def _sign(ox: float) -> str:
@@ -351,9 +360,10 @@ def _metallic(case: Case) -> list[F.Finding]:
     if c.vec_anion < 4:
         return [F.Metallic(rank=0.7, why=f"VEC per anion is {c.vec_anion:.2f}, below 4: too few electrons for octets", evidence=ev)]
     coord = c.aa_bonds[an]
-    if coord.size and float(np.mean(coord)) >= 6:
-        return [F.Metallic(rank=0.7, why=f"anions have {float(np.mean(coord)):.1f} anion neighbours on average: a close-packed metallic arrangement", evidence=ev)]
-    w_d = float(np.sum(cr.occupancy[~an & elements.d_block_by_z()[cr.numbers]]))
+    mean_coord = _mean(coord) if coord.size else 0.0
+    if mean_coord >= 6:
+        return [F.Metallic(rank=0.7, why=f"anions have {mean_coord:.1f} anion neighbours on average: a close-packed metallic arrangement", evidence=ev)]
+    w_d = float(cr.occupancy[~an & elements.d_block_by_z()[cr.numbers]].sum())
     if c.residual > 0 and w_d > 0 and _top_anion_group(case) <= 14:
         return [F.Metallic(rank=0.7, why="group 13-14 anions with transition metals and electrons left over: an intermetallic", evidence=ev)]
     if c.n_anion and w_d / c.n_anion >= 2:
@@ -390,10 +400,9 @@ def _hypervalent(case: Case) -> list[F.Finding]:
         return []
     syms = elements.symbols()
     rad = elements.radii()
-    out = []
-    contacts = case.contacts
-    aa = np.flatnonzero(contacts.bonded)[c.aa_bond]  # anion-anion bonds among the contacts
-    aa_i, aa_j = contacts.i[aa], contacts.j[aa]
+    # Anion sites whose atom has more anion neighbours than its shell allows;
+    # most structures have none, and the bond arrays are made only for these.
+    over = []
     for s in sorted(set(case.sites.site[c.role].tolist())):
         k = int(case.sites.representative[s])
         if not c.role[k]:
@@ -403,8 +412,16 @@ def _hypervalent(case: Case) -> list[F.Finding]:
         n = c.aa_bonds[k]
         if n <= allowed + 1e-6 or allowed < 0:
             continue
+        over.append((k, sym, allowed, n))
+    if not over:
+        return []
+    out = []
+    contacts = case.contacts
+    aa = contacts.bonded.nonzero()[0][c.aa_bond]  # anion-anion bonds among the contacts
+    aa_i, aa_j = contacts.i[aa], contacts.j[aa]
+    for k, sym, allowed, n in over:
         sel = aa[(aa_i == k) | (aa_j == k)]
-        if sel.size < 2:
+        if not 2 <= sel.size <= 4:  # the shapes below have two to four bonds
             continue
         v = _outward(case, k, sel)
         d = np.linalg.norm(v, axis=1)
@@ -620,6 +637,9 @@ def _missing(case: Case) -> list[F.Finding]:
 # Sensitivity to the bond criterion
 
 SCALES = (0.94, 0.97, 1.03, 1.06)
+# The scales below and above 1, each in order of distance from 1.
+_DOWN = tuple(sorted((x for x in SCALES if x < 1), reverse=True))
+_UP = tuple(sorted(x for x in SCALES if x > 1))
 
 
 def _cutoff_range(case: Case, verdict: str) -> list[F.Finding]:
@@ -647,11 +667,11 @@ def _cutoff_range(case: Case, verdict: str) -> list[F.Finding]:
         return answers[key]
 
     lo = hi = 1.0
-    for f in sorted((x for x in SCALES if x < 1), reverse=True):
+    for f in _DOWN:
         if not holds(f):
             break
         lo = f
-    for f in sorted(x for x in SCALES if x > 1):
+    for f in _UP:
         if not holds(f):
             break
         hi = f

@@ -273,15 +273,22 @@ def find_clusters(crystal, contacts, count, valence_of) -> list[Cluster]:
     minus a lone pair (2) when it has no exo bond; the cations' electrons
     are shared among the clusters equally per vertex.
     """
-    b = contacts.bonded
     aa = count.aa_bond
-    bi, bj, sh = contacts.i[b][aa], contacts.j[b][aa], contacts.shift[b][aa]
-    if bi.size == 0:
+    if not np.count_nonzero(aa):
         return []
-    tri = triangle_edges(crystal.natoms, bi, bj, sh)
+    sel = contacts.bonded.nonzero()[0][aa]  # the anion-anion bonds among all contacts
+    bi, bj = contacts.i[sel], contacts.j[sel]
+    n = crystal.natoms
+    # A vertex needs three triangle edges, so at least three bonds: with fewer
+    # than five such atoms there is no cluster, and no need to look for
+    # triangles (most structures end here).
+    all_deg = np.bincount(bi, minlength=n) + np.bincount(bj, minlength=n)
+    if np.count_nonzero(all_deg >= 3) < 5:
+        return []
+    sh = contacts.shift[sel]
+    tri = triangle_edges(n, bi, bj, sh)
     if not tri.any():
         return []
-    n = crystal.natoms
     tri_deg = np.zeros(n)
     np.add.at(tri_deg, bi[tri], 1)
     np.add.at(tri_deg, bj[tri], 1)
@@ -294,9 +301,6 @@ def find_clusters(crystal, contacts, count, valence_of) -> list[Cluster]:
     idx[verts] = np.arange(verts.size)
     keep = tri & (idx[bi] >= 0) & (idx[bj] >= 0)
     comp_of, dims = periodic_components(verts.size, idx[bi[keep]], idx[bj[keep]], sh[keep])
-    all_deg = np.zeros(n)
-    np.add.at(all_deg, bi, 1)
-    np.add.at(all_deg, bj, 1)
     clusters = []
     for cid in np.unique(comp_of):
         if dims[cid] != 0:
