@@ -167,7 +167,7 @@ def count(
 
             raise StructureError(f"--anions names {', '.join(missing)}, not present in {crystal.name or 'the structure'}")
         return ctx.evaluate(list(anions), "set by the user (--anions)")
-    candidates = candidate_partitions(crystal)
+    candidates = [(list(an), why) for an, why in ctx.static.candidates]  # as candidate_partitions(crystal)
     if not candidates:
         return None
     tried = []
@@ -208,6 +208,7 @@ _TARGET_BY_Z.setflags(write=False)
 _SYMBOLS = elements.symbols()
 _CAPABLE_Z = frozenset(np.flatnonzero(elements.capable_by_z()).tolist())
 _NOT_EP_Z = frozenset(np.flatnonzero(~elements.electropositive_by_z()).tolist())
+_PAULING = elements.pauling().tolist()
 # (Z, symbol, block) per atomic number, as a group's element in `_Static`.
 _GROUP_ELEMENT = {k: (k, sym, elements.block(sym)) for k, sym in enumerate(_SYMBOLS) if k}
 
@@ -228,6 +229,7 @@ class _Static:
     group_weight: list[float]  # occupancy per group
     group_size: np.ndarray  # atoms per group
     occ_target: np.ndarray  # per atom: occupancy times the shell target
+    candidates: tuple  # `_candidates` of the elements present
 
 
 def _static(crystal: Crystal, sites: Sites, valence: dict[str, int]) -> _Static:
@@ -265,11 +267,13 @@ def _static(crystal: Crystal, sites: Sites, valence: dict[str, int]) -> _Static:
     group_weight = np.bincount(group_of, weights=occ, minlength=len(uniq)).tolist()
     group_size = np.bincount(group_of, minlength=len(uniq))
     occ_target = occ * _TARGET_BY_Z[z]
-    for arr in (capable_atom, not_ep_atom, group_of, group_size, occ_target):
-        arr.setflags(write=False)
+    # Every Count of the structure hands out group_of: read-only, so that no
+    # caller can change the remembered one.
+    group_of.setflags(write=False)
     out = _Static(
         present, electrons, capable_atom, capable_z, not_ep_atom, not_ep_z,
         group_of, groups, group_elements, group_weight, group_size, occ_target,
+        _candidates(tuple(sorted(zset))),
     )
     _LOCAL.static = (key, out)
     return out
@@ -366,7 +370,7 @@ class _Context:
         else:
             may_bond = ~role & self.static.not_ep_atom
             cc = may_bond[bi] & may_bond[bj]
-            cc_any = bool(cc.any())
+            cc_any = bool(np.count_nonzero(cc))
         lonely_possible = not self.static.capable_z <= anion_z
         if cc_any or lonely_possible:
             ica, jca = bi[ca], bj[ca]
@@ -377,7 +381,7 @@ class _Context:
             dsum = np.bincount(ica, weights=dca, minlength=n) + np.bincount(jca, weights=dca, minlength=n)
             mean_ca = np.where(dcnt > 0, dsum / np.maximum(dcnt, 1), np.inf)
             cc &= self.bd <= CC_BRIDGE * np.minimum(mean_ca[bi], mean_ca[bj])
-            cc_any = bool(cc.any())
+            cc_any = bool(np.count_nonzero(cc))
 
         # Per-atom homonuclear-role bonds: anion-anion for anions, cation-cation
         # for cations (with no cation-cation bond, ic and jc are empty).
@@ -402,23 +406,23 @@ class _Context:
         # element should rather be an anion.
         valid, note = True, ""
         if cc_any:
-            en = elements.pauling()
-            for a, b in zip(z[ic].tolist(), z[jc].tolist()):
+            # Each element pair once, in order of its first bond: the first
+            # offending bond is the first bond of the first offending pair.
+            for a, b in dict.fromkeys(zip(z[ic].tolist(), z[jc].tolist())):
                 if a == b:
                     continue
-                more = a if en[a] > en[b] else b
-                sm = elements.symbols()[more]
-                if elements.can_be_anion(sm):
+                more = a if _PAULING[a] > _PAULING[b] else b
+                if more in _CAPABLE_Z:
                     valid = False
-                    note = f"{sm} is left as a cation bonded to {elements.symbols()[b if more == a else a]}"
+                    note = f"{_SYMBOLS[more]} is left as a cation bonded to {_SYMBOLS[b if more == a else a]}"
                     break
         if valid and lonely_possible:
             # An element that could be an anion, made a cation without a
             # single bond to an anion (Cl in a hydrate split on O alone).
             lonely = ~role & (dcnt == 0) & self.static.capable_atom
-            if lonely.any():
+            if np.count_nonzero(lonely):
                 valid = False
-                sym = elements.symbols()[int(z[np.flatnonzero(lonely)[0]])]
+                sym = _SYMBOLS[int(z[np.flatnonzero(lonely)[0]])]
                 note = f"{sym} would be a cation without anion neighbours"
 
         if valid or close_invalid:
@@ -454,7 +458,7 @@ class _Context:
         anion, and 2 per extra bond order at short anion-anion contacts
         between other anions."""
         role, aa, per = split.role, split.aa, split.per
-        if not aa.any():
+        if not np.count_nonzero(aa):
             return 0.0, 0.0  # no anion has an anion neighbour
         c = self.contacts
         bi, bj, bd, bw = self.bi, self.bj, self.bd, self.bw
@@ -488,7 +492,7 @@ class _Context:
         short = split.ca & (self.contacts.ratio[self.bonded] <= SATURATED_RATIO)
         i, j = self.bi[short], self.bj[short]
         out = ~split.role & (np.bincount(i, minlength=n) + np.bincount(j, minlength=n) >= 4)
-        if out.any():
+        if np.count_nonzero(out):
             ends = np.concatenate([i, j])
             dd = np.concatenate([self.bd[short], self.bd[short]])
             lo = np.full(n, np.inf)
