@@ -145,18 +145,27 @@ def _references(ratio, i, j, numbers, usable):
     code = first_seen(numbers.tolist())  # element codes 0, 1, ... per atom
     ne = max(code) + 1
     code = np.array(code, dtype=np.int64)
-    ki = i * ne + code[j]
-    kj = j * ne + code[i]
     n_atoms = code.size
-    ru, kiu, kju = ratio, ki, kj
-    if np.count_nonzero(usable) < usable.size:  # (cheaper than usable.all())
-        ru, kiu, kju = ratio[usable], ki[usable], kj[usable]
-    best = filled(n_atoms * ne, np.inf)  # per atom and partner element
-    np.minimum.at(best, kiu, ru)
-    np.minimum.at(best, kju, ru)
+    m = ratio.size
+    # Both ends of every contact at once (atom, partner): the first m entries
+    # are the contacts seen from i, the last m seen from j.
+    atom = np.concatenate((i, j))
+    # best[e * n_atoms + k]: atom k's shortest usable contact to element e.
+    # (Laid out element by element, the minimum over the elements runs along
+    # the first axis, which numpy does row by row, rather than over the
+    # short rows of each atom one at a time.)
+    key = code[np.concatenate((j, i))]
+    key *= n_atoms
+    key += atom
+    if np.count_nonzero(usable) < m:  # (cheaper than usable.all())
+        ratio = np.where(usable, ratio, np.inf)  # (an unusable contact changes no minimum)
+    best = filled(ne * n_atoms, np.inf)
+    np.minimum.at(best, key, np.concatenate((ratio, ratio)))
     # (np.minimum.reduce(x) is x.min() without the method's Python-level wrapper)
-    nearest = np.minimum.reduce(best.reshape(n_atoms, ne), axis=1)
-    return np.minimum(best[ki], best[kj]), np.minimum(nearest[i], nearest[j])
+    nearest = np.minimum.reduce(best.reshape(ne, n_atoms), axis=0)
+    per_el = best[key]
+    overall = nearest[atom]
+    return np.minimum(per_el[:m], per_el[m:]), np.minimum(overall[:m], overall[m:])
 
 
 def _extended(core):
@@ -178,10 +187,18 @@ def _judge(ratio, usable, ref_el, ref_all, core, maximum, relative, extended) ->
     as the failed comparison it stands for, and np.minimum keeps it, failing
     the comparison; so nan numbers decide as the separate comparisons would."""
     eps = 1e-9
-    limit_el = ref_el * relative + eps
-    limit_all = ref_all * relative + eps
-    either = np.fmax(np.fmax(core, np.minimum(limit_el, extended)), limit_all)
-    return usable & (ratio <= np.minimum(maximum, either))
+    # (worked in place in one new array: the same operations, fewer allocations)
+    limit = ref_el * relative
+    limit += eps
+    np.minimum(limit, extended, out=limit)
+    np.fmax(core, limit, out=limit)
+    limit_all = ref_all * relative
+    limit_all += eps
+    np.fmax(limit, limit_all, out=limit)
+    np.minimum(maximum, limit, out=limit)
+    bonded = ratio <= limit
+    bonded &= usable
+    return bonded
 
 
 _WOBBLED: dict[tuple, tuple] = {}
