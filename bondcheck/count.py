@@ -457,32 +457,55 @@ class _Context:
         """Electrons that pi bonding could supply: 1 per planar three-bonded
         anion, and 2 per extra bond order at short anion-anion contacts
         between other anions."""
-        role, aa, per = split.role, split.aa, split.per
-        if not np.count_nonzero(aa):
+        role, per = split.role, split.per
+        ab = np.flatnonzero(split.aa)  # the anion-anion bonds, in bond order
+        if not ab.size:
             return 0.0, 0.0  # no anion has an anion neighbour
         c = self.contacts
-        bi, bj, bd, bw = self.bi, self.bj, self.bd, self.bw
+        bi, bj = self.bi[ab], self.bj[ab]
         n = self.crystal.natoms
         planar_atom = np.zeros(n, dtype=bool)
-        three = np.flatnonzero(role & (np.abs(per - 3.0) < 1e-6))
-        if three.size:
-            vec = c.vectors(self.crystal, c.bonded)
-            for k in three:
-                m = aa & ((bi == k) | (bj == k))
-                v = np.where((bi[m] == k)[:, None], vec[m], -vec[m])
-                if v.shape[0] != 3:
-                    continue
-                normal = _cross(v[0] - v[1], v[0] - v[2])
-                nn = np.linalg.norm(normal)
-                if nn > 1e-9 and abs(np.dot(v[0], normal / nn)) < 0.15:
-                    planar_atom[k] = True
-        planar = float(self.occ[planar_atom].sum())
+        three = role & (np.abs(per - 3.0) < 1e-6)
+        if np.count_nonzero(three):
+            vec = c.vectors(self.crystal, c.bonded)[ab]
+            # Each such anion's anion-anion bonds, in bond order, as vectors
+            # pointing away from it (a bond to its own image once, from its
+            # first end).
+            at_i = three[bi]
+            at_j = three[bj] & (bi != bj)
+            atom = np.concatenate([bi[at_i], bj[at_j]])
+            order = np.lexsort((np.concatenate([np.flatnonzero(at_i), np.flatnonzero(at_j)]), atom))
+            atom = atom[order]
+            rows = np.concatenate([vec[at_i], -vec[at_j]])[order]
+            # The anions with exactly three such bonds, and where their rows start.
+            first = np.flatnonzero(np.concatenate([[True], atom[1:] != atom[:-1]]))
+            size = np.diff(np.append(first, atom.size))
+            start = first[size == 3]
+            if start.size:
+                v0 = rows[start]
+                d1, d2 = v0 - rows[start + 1], v0 - rows[start + 2]
+                # The cross product of d1 and d2, the same products and differences as np.cross.
+                normal = np.stack([
+                    d1[:, 1] * d2[:, 2] - d1[:, 2] * d2[:, 1],
+                    d1[:, 2] * d2[:, 0] - d1[:, 0] * d2[:, 2],
+                    d1[:, 0] * d2[:, 1] - d1[:, 1] * d2[:, 0],
+                ], axis=1)
+                for t, k in enumerate(atom[start].tolist()):
+                    # np.linalg.norm of a vector is the square root of its dot
+                    # product with itself; each dot product as before.
+                    nn = math.sqrt(normal[t].dot(normal[t]))
+                    if nn > 1e-9 and abs(np.dot(v0[t], normal[t] / nn)) < 0.15:
+                        planar_atom[k] = True
         rad = elements.radii()
         z = self.crystal.numbers
-        order = 10.0 ** ((rad[z[bi]] + rad[z[bj]] - bd) / PAULING_K)
+        order = 10.0 ** ((rad[z[bi]] + rad[z[bj]] - self.bd[ab]) / PAULING_K)
         extra = np.where(order >= TRIPLE_ORDER, 2.0, np.where(order >= DOUBLE_ORDER, 1.0, 0.0))
-        usable = aa & ~planar_atom[bi] & ~planar_atom[bj]
-        short = 2.0 * float((bw * extra)[usable].sum())
+        weighted = self.bw[ab] * extra
+        if not np.count_nonzero(planar_atom):
+            return 2.0 * float(weighted.sum()), 0.0
+        planar = float(self.occ[planar_atom].sum())
+        usable = ~planar_atom[bi] & ~planar_atom[bj]
+        short = 2.0 * float(weighted[usable].sum())
         return short, planar
 
     def _saturated(self, split: _Split) -> np.ndarray:
@@ -577,14 +600,6 @@ def _kept_options(z: int, ccb: float, overridden: bool, saturated: bool) -> tupl
             opts = {0: 0}
         return tuple((ccb + k, c) for k, c in opts.items())
     return tuple((k, c) for k, c in opts.items() if k >= ccb - 1e-6)
-
-
-def _cross(a: np.ndarray, b: np.ndarray) -> np.ndarray:
-    """np.cross of two 3-vectors (the same products and differences), without
-    its overhead."""
-    a0, a1, a2 = a.tolist()
-    b0, b1, b2 = b.tolist()
-    return np.array([a1 * b2 - a2 * b1, a2 * b0 - a0 * b2, a0 * b1 - a1 * b0])
 
 
 _FACTS: dict[int, tuple] = {}
