@@ -82,6 +82,8 @@ REPAIRS = {
 
 def _repairs(crystal: Crystal) -> list[F.Finding]:
     meta = crystal.meta or {}
+    if not meta.keys() & REPAIRS.keys():  # the usual case: nothing mended
+        return []
     what = []
     for key, text in REPAIRS.items():
         v = meta.get(key)
@@ -96,13 +98,14 @@ def _diagnose(crystal, contacts, sites, c, fragile_sites, anions=None, valence=N
     case = Case(crystal, contacts, sites, c, anions, dict(valence or {}), criterion or Criterion(), list(fragile_sites))
     out: list[F.Finding] = []
     syms = elements.symbols()
-    present = sorted({syms[z] for z in crystal.numbers.tolist()})
+    zs = set(crystal.numbers.tolist())
     if c is None:
+        present = sorted(syms[z] for z in zs)
         out.append(F.NothingToCount(why=f"no element of {', '.join(present)} can take the anion role: a metal or intermetallic"))
         out.append(F.Metallic(why="only metals are present"))
         return NOT_APPLICABLE, out, []
-    if len(present) == 1:
-        el = present[0]
+    if len(zs) == 1:
+        el = syms[zs.pop()]
         if not elements.can_be_anion(el) or (c.vec_anion < 4 and el not in ("H", "He")):
             what = "a metal" if not elements.can_be_anion(el) else f"an element with {_fmt(c.vec_anion)} valence electrons"
             out.append(F.NothingToCount(why=f"{el} is {what}: no octets to complete by two-centre bonds"))
@@ -111,7 +114,7 @@ def _diagnose(crystal, contacts, sites, c, fragile_sites, anions=None, valence=N
 
     case.components = anion_components(crystal, contacts, c)
     partial = crystal.occupancy < 0.999
-    if partial.any():
+    if np.count_nonzero(partial):
         out.append(_occupancy(case, partial))
 
     if c.closure.closes:
@@ -522,7 +525,7 @@ def _swaps(case: Case) -> list[F.Finding]:
     # and at most MAX_SWAPS of them (each try is a new count).
     direction = -1 if c.residual > 0 else 1
     imbalance = abs(c.residual * c.n_anion)
-    weight = np.bincount(c.group_of, weights=cr.occupancy, minlength=len(c.groups))
+    weight = np.bincount(c.group_of, weights=cr.occupancy, minlength=len(c.groups)).tolist()
     order = sorted(range(len(c.groups)), key=lambda g: abs(weight[g] - imbalance))
     tried = 0
     for g in order:
@@ -548,7 +551,7 @@ def _swaps(case: Case) -> list[F.Finding]:
         lab = cr.label(first[g])
         out.append(F.Misassigned(
             sites=[lab], rank=0.95 - 0.05 * cost, site=lab, old=syms[z], new=syms[t], extra="",
-            evidence={"site": lab, "from": syms[z], "to": syms[t], "atoms_per_cell": int(np.sum(atoms)),
+            evidence={"site": lab, "from": syms[z], "to": syms[t], "atoms_per_cell": int(np.count_nonzero(atoms)),
                       "residual_as_refined": round(c.residual, 3)},
         ))
     if out:
@@ -561,7 +564,7 @@ def _swaps(case: Case) -> list[F.Finding]:
         atoms = c.group_of == g
         if not c.role[atoms].all():
             continue
-        w = float(np.sum(cr.occupancy[atoms]))
+        w = float(cr.occupancy[atoms].sum())
         x = -c.residual * c.n_anion / (w * dv)
         if not 0.05 <= x <= 0.95:
             continue
