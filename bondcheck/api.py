@@ -24,6 +24,7 @@ from .arrays import filled, first_index, first_seen
 from .bonds import Criterion, find_contacts, per_atom
 from .count import Count, _element_facts, count, target
 from .diagnose import diagnose
+from .motifs import describe
 from .record import Crystal, StructureError
 from .symmetry import find_sites, group_sites
 
@@ -116,11 +117,13 @@ def formula_of(crystal: Crystal) -> tuple[str, float]:
     en = elements.pauling()
     occ, numbers = crystal.occupancy, crystal.numbers
     if (occ == 1.0).all():
-        # Full occupancy: the amounts are the atom counts.
+        # Full occupancy: whole atom counts, divided by their common divisor.
         zs = numbers.tolist()
-        amounts = {z: float(zs.count(z)) for z in set(zs)}
-    else:
-        amounts = {int(z): float(np.sum(occ[numbers == z])) for z in np.unique(numbers)}
+        counts = {z: zs.count(z) for z in set(zs)}
+        g = reduce(math.gcd, counts.values())
+        order = sorted(counts, key=lambda z: (en[z], z))
+        return "".join(syms[z] if counts[z] == g else f"{syms[z]}{counts[z] // g}" for z in order), float(g)
+    amounts = {int(z): float(np.sum(occ[numbers == z])) for z in np.unique(numbers)}
     ints = [round(a) for a in amounts.values()]
     if all(abs(a - round(a)) < 1e-3 for a in amounts.values()) and min(ints) > 0:
         g = reduce(math.gcd, ints)
@@ -225,8 +228,6 @@ def _count_stage(crystal: Crystal, contacts, sites, options: Options, res: Resul
     res.findings = found
     res.components = [comp.to_dict() for comp in components]
     if components:
-        from .motifs import describe
-
         res.polyanion = describe(components)
     # Causes: what explains the verdict, most likely first (findings that only
     # add context, such as partial-occupancy or lone-pair-activity, are left out).
@@ -263,17 +264,20 @@ def _validate(crystal: Crystal) -> None:
 def _fragile_sites(crystal, contacts, sites, c: Count | None, options: Options, fragile) -> list[str]:
     """Sites where a contact that enters the count (anion-anion, or between two
     cations that may bond) changes within the criterion wobble."""
-    if c is None or not contacts.fragile.any():
+    if c is None:
         return []
-    role = c.role
-    f = contacts.fragile & ~contacts.ionic_pair & (role[contacts.i] == role[contacts.j])
-    if not f.any():
+    # The few fragile contacts first, then those of equal roles at both ends.
+    (picked,) = contacts.fragile.nonzero()
+    if not picked.size:
         return []
-    atoms = np.zeros(crystal.natoms, dtype=bool)
-    atoms[contacts.i[f]] = True
-    atoms[contacts.j[f]] = True
+    i, j = contacts.i[picked], contacts.j[picked]
+    keep = ~contacts.ionic_pair[picked] & (c.role[i] == c.role[j])
+    if not keep.any():
+        return []
+    found = set(sites.site[i[keep]].tolist())
+    found.update(sites.site[j[keep]].tolist())
     rep = sites.representative
-    return [crystal.label(int(rep[s])) for s in sorted(set(sites.site[atoms].tolist()))]
+    return [crystal.label(int(rep[s])) for s in sorted(found)]
 
 
 
@@ -314,7 +318,7 @@ def _site_rows(crystal, sites, c: Count | None, coord, nearest, last, first_out,
     near = r3_all(_group_extreme(nearest, inv, ng, np.fmin))
     lastb = r3_all(_group_extreme(last, inv, ng, np.fmax))
     firstu = r3_all(_group_extreme(first_out, inv, ng, np.fmin))
-    frag = (np.bincount(inv[fragile], minlength=ng) > 0).tolist()
+    frag = {inv_list[k] for k in fragile.nonzero()[0].tolist()}  # groups with a fragile atom
     mult = None if sites.multiplicity is None else sites.multiplicity.tolist()
     if c is not None:
         bonds = _group_mean(c.aa_bonds, inv, counts, crowded).tolist()
@@ -325,37 +329,37 @@ def _site_rows(crystal, sites, c: Count | None, coord, nearest, last, first_out,
     for u, k in enumerate(first):
         s, z = keys[k]
         sym, _block, valence, keep_opts = _element_facts(z)
-        fu, lb = firstu[u], lastb[u]
-        row = {
+        role = bond_count = charge = None
+        if c is not None:
+            b = bonds[u]
+            bond_count = _r3(b)
+            if role_first[u]:
+                role = "anion"
+                charge = _r3(b + valence - target(sym))
+            else:
+                role = "cation"
+                g = group_first[u]
+                if g in keep:
+                    charge = _r3(valence - keep[g])
+                elif keep_opts == {0: 0}:
+                    charge = _r3(float(valence))
+        o, fu, lb = occ[u], firstu[u], lastb[u]
+        rows.append({
             "label": crystal.label(k),
             "element": sym,
             "multiplicity": None if mult is None else mult[s],
             "wyckoff": sites.wyckoff[s],
-            "occupancy": round(occ[u], 4),
-            "role": None,
+            "occupancy": o if o == 1.0 else round(o, 4),
+            "role": role,
             "coordination": coordination[u],
-            "bonds": None,
-            "formal_charge": None,
+            "bonds": bond_count,
+            "formal_charge": charge,
             "nearest": near[u],
             "last_bonded": lb,
             "first_unbonded": fu,
-            "fragile": frag[u],
-        }
-        if c is not None:
-            anion = role_first[u]
-            row["role"] = "anion" if anion else "cation"
-            b = bonds[u]
-            row["bonds"] = _r3(b)
-            if anion:
-                row["formal_charge"] = _r3(b + valence - target(sym))
-            else:
-                g = group_first[u]
-                if g in keep:
-                    row["formal_charge"] = _r3(valence - keep[g])
-                elif keep_opts == {0: 0}:
-                    row["formal_charge"] = _r3(float(valence))
-        row["gap"] = _r3(fu - lb) if fu and lb else None
-        rows.append(row)
+            "fragile": u in frag,
+            "gap": _r3(fu - lb) if fu and lb else None,
+        })
     return rows
 
 
