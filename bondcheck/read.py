@@ -1091,7 +1091,7 @@ def _count_images(frac: np.ndarray, cell: np.ndarray, group: _Group) -> int:
 # full one.
 _APART = (MERGE_TOL + 1e-6) ** 2
 _ONES3 = np.ones(3)
-_NEIGHBOUR_BINS = np.array(np.meshgrid([-1, 0, 1], [-1, 0, 1], [-1, 0, 1], indexing="ij")).reshape(3, -1).T
+_STEPS = np.array([[-1], [0], [1]])
 _FEW = 64  # up to this many atoms, every pair is looked at
 
 
@@ -1138,13 +1138,25 @@ def _duplicates(pos: np.ndarray, cell: np.ndarray, widths: list[float], numbers:
         b = np.minimum((pos * nb).astype(np.int64), nb - 1)
         mult = np.array([nb[1] * nb[2], nb[2], 1], dtype=np.int64)
         key = b @ mult
+        # The keys of each atom's bin and the 26 bins around it (27, n): bin
+        # offsets -1, 0, 1 along each axis (x slowest), wrapped per axis.
+        qa, qb, qc = ((b[:, k] + _STEPS) % nb[k] * mult[k] for k in range(3))
+        q = (qa[:, None, None, :] + qb[None, :, None, :] + qc[None, None, :, :]).reshape(27, n)
+        sk = np.sort(key)
+        # Each atom alone in its bin and the bins around it (the usual case)?
+        # The bins on one side suffice (q[14:], the offsets after 0, 0, 0):
+        # when B lies in a bin next to A's, A lies in the bin on the other
+        # side of B's.
+        # (The atoms' keys are looked up among the sorted bin keys: binary
+        # searches for n keys in 13 n, cheaper than for 13 n keys in n.)
+        if (sk[1:] != sk[:-1]).all():
+            near = np.sort(q[14:], axis=None)
+            if not (near.take(np.minimum(np.searchsorted(near, sk), near.size - 1)) == sk).any():
+                return None
         order = np.argsort(key, kind="stable")
         sk = key[order]
-        q = ((b[None, :, :] + _NEIGHBOUR_BINS[:, None, :]) % nb) @ mult   # (27, n)
         lo = np.searchsorted(sk, q, "left")
         cnt = (np.searchsorted(sk, q, "right") - lo).ravel()
-        if int(cnt.sum()) == n:  # each atom alone in its bin and the bins around it
-            return None
         # candidate pairs: each atom with the atoms of its neighbouring bins
         # (with fewer than three bins along an axis a pair may come twice: harmless)
         rows = np.repeat(np.tile(np.arange(n), len(q)), cnt)
