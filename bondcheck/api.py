@@ -302,8 +302,10 @@ def _group_extreme(x: np.ndarray, inv: np.ndarray, ng: int, fn) -> np.ndarray:
 
 def _site_rows(crystal, sites, c: Count | None, coord, nearest, last, first_out, fragile) -> list[dict]:
     """One row per (site, element), in order of the first atom of each."""
-    def r3_all(values: np.ndarray) -> list[float | None]:
-        return [_r3(x) for x in values.tolist()]
+    isfinite = math.isfinite
+
+    def r3_all(values: np.ndarray) -> list[float | None]:  # _r3 of each value
+        return [(x + 0.0 if x.is_integer() else round(x, 3) + 0.0) if isfinite(x) else None for x in values.tolist()]
 
     # Groups of atoms by (site, element), numbered in order of their first atom.
     keys = list(zip(sites.site.tolist(), crystal.numbers.tolist()))
