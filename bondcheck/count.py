@@ -282,6 +282,8 @@ def _static(crystal: Crystal, sites: Sites, valence: dict[str, int]) -> _Static:
 class _Context:
     """Per-structure quantities shared by the candidate partitions."""
 
+    __slots__ = ("crystal", "contacts", "valence_override", "occ", "static", "bonded", "bi", "bj", "bw", "bd")
+
     def __init__(self, crystal: Crystal, contacts: Contacts, sites: Sites, valence: dict[str, int]):
         self.crystal = crystal
         self.contacts = contacts
@@ -297,45 +299,50 @@ class _Context:
     def polyanion_split(self, start: list[str]) -> tuple[list[str], str]:
         """Grow the anion set by elements bonded to anions with a small
         electronegativity difference (< 0.5): a Ga-Ge framework, As-S pairs."""
-        en = elements.pauling()
         nums = elements.numbers()
-        syms = elements.symbols()
-        capable = elements.capable_by_z()
+
+        def near(a: int, b: int) -> bool:
+            # Only pairs of different elements, close in electronegativity, one
+            # of them anion-capable, can bring in an anion.
+            return a != b and abs(_PAULING[a] - _PAULING[b]) < 0.5 and (a in _CAPABLE_Z or b in _CAPABLE_Z)
+
         anions = list(start)
+        an_z = {nums[a] for a in anions}
+        present_z = [nums[sy] for sy in self.static.present]
         # The element pairs of the bonds, each once, in order of first bond:
         # the growth below depends only on which pairs occur and on that order
         # (a later bond of the same pair can add nothing), and a structure has
-        # far fewer pairs than bonds.
-        z = self.crystal.numbers
-        pairs = list(dict.fromkeys(zip(z[self.bi].tolist(), z[self.bj].tolist())))
-        # Only pairs of different elements, close in electronegativity, one of
-        # them anion-capable, can bring in an anion; they are met in bond order.
-        near = [
-            (a, b) for a, b in pairs
-            if a != b and abs(en[a] - en[b]) < 0.5 and (capable[a] or capable[b])
-        ]
-        changed = True
-        while changed:
-            changed = False
-            an_z = {nums[a] for a in anions}
-            for a, b in near:
-                if a in an_z and b not in an_z:
-                    y = b
-                elif b in an_z and a not in an_z:
-                    y = a
-                else:
-                    continue
-                if capable[y]:
-                    anions.append(syms[y])
-                    an_z.add(y)
-                    changed = True
+        # far fewer pairs than bonds. Taken only when some pair of the
+        # elements present could grow the set, or an element could be left
+        # without an anion neighbour.
+        pairs = None
+        if any(near(a, b) for a in present_z for b in present_z if a < b):
+            z = self.crystal.numbers
+            pairs = list(dict.fromkeys(zip(z[self.bi].tolist(), z[self.bj].tolist())))
+            grow = [(a, b) for a, b in pairs if near(a, b)]  # met in bond order
+            changed = True
+            while changed:
+                changed = False
+                for a, b in grow:
+                    if a in an_z and b not in an_z:
+                        y = b
+                    elif b in an_z and a not in an_z:
+                        y = a
+                    else:
+                        continue
+                    if y in _CAPABLE_Z:
+                        anions.append(_SYMBOLS[y])
+                        an_z.add(y)
+                        changed = True
         # Anion-capable elements with no bond to any anion are isolated anions
         # (Cl- beside water molecules), not cations.
-        bonded_to_anion = {b for a, b in pairs if a in an_z} | {a for a, b in pairs if b in an_z}
-        for sy in self.static.present:
-            zz = nums[sy]
-            if sy not in anions and elements.can_be_anion(sy) and zz not in bonded_to_anion:
-                anions.append(sy)
+        loose = [sy for sy in self.static.present if sy not in anions and nums[sy] in _CAPABLE_Z]
+        if loose:
+            if pairs is None:
+                z = self.crystal.numbers
+                pairs = list(dict.fromkeys(zip(z[self.bi].tolist(), z[self.bj].tolist())))
+            bonded_to_anion = {b for a, b in pairs if a in an_z} | {a for a, b in pairs if b in an_z}
+            anions += [sy for sy in loose if nums[sy] not in bonded_to_anion]
         if anions == list(start):
             return anions, f"{anions[0]} is the most electronegative element that can be an anion; no split closes the count"
         return anions, (
@@ -560,28 +567,28 @@ class _Context:
         go, per, cc_any = self.static.group_of, split.per, split.cc_any
         ng = len(self.static.groups)
         ccb_all = None
-        if cc_any and np.array_equal(per, np.rint(per)):
+        if cc_any and not np.count_nonzero(per != np.rint(per)):
             # Whole bond counts: any order of summation gives np.mean's value.
-            ccb_all = np.bincount(go, weights=per, minlength=ng) / self.static.group_size
+            ccb_all = (np.bincount(go, weights=per, minlength=ng) / self.static.group_size).tolist()
         all_saturated = None
+        anion_z, weight, override = split.anion_z, self.static.group_weight, self.valence_override
         for g, (zz, sym, block) in enumerate(self.static.group_elements):
-            if zz in split.anion_z:
+            if zz in anion_z:
                 continue
-            w = self.static.group_weight[g]
             # cation-cation bonds per atom (none without a cation-cation bond)
             if not cc_any:
                 ccb = 0.0
             elif ccb_all is not None:
-                ccb = float(ccb_all[g])
+                ccb = ccb_all[g]
             else:
                 ccb = float(np.mean(per[go == g]))
-            overridden = sym in self.valence_override
+            overridden = sym in override
             saturated = False
             if overridden or block == "p":
                 if all_saturated is None:
-                    all_saturated = np.bincount(go[~self._saturated(split)], minlength=ng) == 0
-                saturated = bool(all_saturated[g])
-            out.append((g, w, _kept_options(zz, ccb, overridden, saturated)))
+                    all_saturated = (np.bincount(go[~self._saturated(split)], minlength=ng) == 0).tolist()
+                saturated = all_saturated[g]
+            out.append((g, weight[g], _kept_options(zz, ccb, overridden, saturated)))
         return tuple(out)
 
 
