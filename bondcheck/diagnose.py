@@ -13,7 +13,7 @@ import numpy as np
 from . import elements
 from . import findings as F
 from .arrays import first_index
-from .bonds import Contacts, Criterion, find_contacts, rescaled
+from .bonds import WOBBLE, Contacts, Criterion, find_contacts, rescaled
 from .count import PAULING_K, Count, count, target
 from .motifs import Component, anion_components, find_clusters, wade
 from .motifs import formula as formula_of_numbers
@@ -652,14 +652,31 @@ def _cutoff_range(case: Case, verdict: str) -> list[F.Finding]:
     if not case.fragile_sites:
         return []
 
+    given, crit = case.contacts, case.criterion
     # The same bonds give the same count: the structure as given holds, and a
     # scale that bonds what the previous one did repeats its answer.
-    answers = {case.contacts.bonded.tobytes(): True}
+    answers = {given.bonded.tobytes(): True}
+    # The contacts were judged with this criterion, and their fragile flags
+    # mark the decisions that differ between the scales 1 - WOBBLE and
+    # 1 + WOBBLE. With a relative tolerance of at least 1, a larger scale
+    # raises every threshold of the criterion, so the bonds only grow with the
+    # scale: at 1 - WOBBLE they are the bonds less the fragile contacts, at
+    # 1 + WOBBLE the bonds and the fragile contacts, known without judging.
+    known = {}
+    if crit.relative >= 1 and crit.core > 0 and crit.maximum > 0:
+        known = {1 - WOBBLE: given.bonded & ~given.fragile, 1 + WOBBLE: given.bonded | given.fragile}
 
     def holds(f: float) -> bool:
-        contacts = rescaled(case.crystal, case.contacts, case.criterion.scaled(f))
-        key = contacts.bonded.tobytes()
+        bonded = known.get(f)
+        if bonded is None:
+            contacts = rescaled(case.crystal, given, crit.scaled(f))
+            bonded = contacts.bonded
+        else:
+            contacts = None  # made below when the bonds need a count
+        key = bonded.tobytes()
         if key not in answers:
+            if contacts is None:
+                contacts = replace(given, bonded=bonded)
             try:
                 cc = count(case.crystal, contacts, case.sites, case.anions, case.valence)
             except Exception:  # a variant that cannot be counted ends the range
