@@ -460,10 +460,10 @@ def _oxidation_states(case: Case) -> list[F.Finding]:
     """Implied oxidation state of the d-block cations if they took the whole residual."""
     c, cr = case.count, case.crystal
     syms = elements.symbols()
-    tm = [k for k in np.flatnonzero(~c.role).tolist() if elements.block(syms[cr.numbers[k]]) == "d"]
+    tm = (~c.role & elements.d_block_by_z()[cr.numbers]).nonzero()[0].tolist()  # d-block cations
     if not tm:
         return []
-    w = float(np.sum(cr.occupancy[tm]))
+    w = float(cr.occupancy[tm].sum())
     keep_needed = c.residual * c.n_anion + c.cc_observed * c.n_anion
     kept_each = keep_needed / w
     els = sorted({syms[cr.numbers[k]] for k in tm})
