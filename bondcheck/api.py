@@ -90,14 +90,20 @@ _AS_IS = frozenset((str, int, bool, type(None)))
 def _finite(x):
     """Evidence with any non-finite float turned into null (JSON has no inf or
     nan); dicts, lists and tuples are copied, tuples as lists."""
-    if type(x) in _AS_IS:
-        return x
+    t = type(x)
+    if t is float:
+        return x if math.isfinite(x) else None
+    if t is dict:
+        return {k: v if type(v) in _AS_IS else _finite(v) for k, v in x.items()}
+    if t is list or t is tuple:
+        return [v if type(v) in _AS_IS else _finite(v) for v in x]
+    # Subclasses (numpy floats, named tuples, ...) as their base types.
     if isinstance(x, float):
         return x if math.isfinite(x) else None
     if isinstance(x, dict):
-        return {k: v if type(v) in _AS_IS else _finite(v) for k, v in x.items()}
+        return _finite(dict(x))
     if isinstance(x, (list, tuple)):
-        return [v if type(v) in _AS_IS else _finite(v) for v in x]
+        return _finite(list(x))
     return x
 
 
