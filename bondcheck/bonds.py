@@ -124,18 +124,116 @@ def _neighbour_pairs(crystal: Crystal, cutoff: float):
     """Unordered pairs within cutoff as vesin returns them: (pairs (m, 2),
     shifts (m, 3), distances (m,)), views into the neighbour list's buffers,
     valid until its next search. vesin runs on one thread (the scan
-    parallelises over structures), with one NeighborList object per thread
-    reused across calls."""
+    parallelises over structures), with one search object per thread reused
+    across calls."""
     _check_cell_list(crystal.cell, cutoff)
-    nl = getattr(_LOCAL, "nl", None)
-    if nl is None:
-        from vesin import NeighborList
-
-        nl = _LOCAL.nl = NeighborList(cutoff=cutoff, full_list=False, n_threads=1)
-    nl.cutoff = cutoff
+    search = getattr(_LOCAL, "search", None)
+    if search is None:
+        search = _LOCAL.search = _direct_search() or _WrappedSearch()
     cell = np.ascontiguousarray(crystal.cell, dtype=np.float64)
     pts = np.ascontiguousarray(crystal.frac @ cell, dtype=np.float64)
-    return nl.compute(points=pts, box=cell, periodic=_PERIODIC, quantities="PSd", copy=False)
+    return search(pts, cell, cutoff)
+
+
+class _WrappedSearch:
+    """The search through vesin's Python wrapper, NeighborList.compute."""
+
+    def __init__(self):
+        from vesin import NeighborList
+
+        self.nl = NeighborList(cutoff=1.0, full_list=False, n_threads=1)
+
+    def __call__(self, points: np.ndarray, box: np.ndarray, cutoff: float):
+        self.nl.cutoff = cutoff
+        return self.nl.compute(points=points, box=box, periodic=_PERIODIC, quantities="PSd", copy=False)
+
+
+# vesin versions whose C entry point _DirectSearch calls as their own Python
+# wrapper does (checked against the wrapper's results on every corpus structure).
+_DIRECT_VESIN = ("0.6.",)
+
+
+def _direct_search():
+    """A _DirectSearch when the installed vesin is a version it was checked
+    with, else None (the wrapper is used)."""
+    try:
+        import vesin
+
+        if not vesin.__version__.startswith(_DIRECT_VESIN):
+            return None
+        return _DirectSearch()
+    except Exception:  # (a vesin laid out otherwise: its wrapper still works)
+        return None
+
+
+class _ArrayView:
+    """Lets numpy view memory it does not own (through __array_interface__)."""
+
+    __slots__ = ("__array_interface__",)
+
+
+def _view(address: int, shape: tuple, typestr: str) -> np.ndarray:
+    v = _ArrayView()
+    v.__array_interface__ = {"data": (address, False), "shape": shape, "typestr": typestr, "version": 3}
+    return np.asarray(v)
+
+
+class _DirectSearch:
+    """vesin's search through vesin_neighbors, the function of its C API that
+    its Python wrapper calls, with the ctypes declarations and the library the
+    package ships.  The call, its options and the buffers the pairs come back
+    in are those of NeighborList.compute(..., quantities="PSd", copy=False):
+    the same pairs in the same order.  What is left out is the wrapper's
+    per-call work (about 18 us of the 90 us a structure's search takes): it
+    copies its inputs, builds the options and ctypes pointers anew, and wraps
+    each output pointer in a ctypes array type made for that number of pairs
+    and never freed (the memory a long scan accumulates)."""
+
+    def __init__(self):
+        import ctypes
+
+        import vesin
+        from vesin._c_api import VesinAutoAlgorithm, VesinCPU, VesinDevice, VesinNeighborList, VesinOptions
+
+        self._ctypes = ctypes
+        self._lib = vesin.get_library()
+        self._neighbors = VesinNeighborList()
+        self._device = VesinDevice(VesinCPU, 0)
+        o = self._options = VesinOptions()
+        o.full, o.sorted, o.algorithm, o.skin, o.n_threads = False, False, VesinAutoAlgorithm, 0.0, 1
+        o.return_shifts, o.return_distances, o.return_vectors = True, True, False
+        self._error = ctypes.c_char_p()
+        self._double = ctypes.POINTER(ctypes.c_double)
+        self._periodic = _PERIODIC.ctypes.data_as(ctypes.POINTER(ctypes.c_bool))
+        self._types = (np.dtype(np.uintp).str, np.dtype(np.int32).str, np.dtype(np.float64).str)
+        if np.dtype(np.uintp).itemsize != ctypes.sizeof(ctypes.c_size_t):
+            raise TypeError("size_t is not the size of a pointer")
+
+    def __del__(self):
+        try:
+            self._lib.vesin_free(self._neighbors)
+        except Exception:  # (at interpreter exit the library may be gone)
+            pass
+
+    def __call__(self, points: np.ndarray, box: np.ndarray, cutoff: float):
+        # points and box: C-contiguous float64, as the C function reads them
+        if box.shape != (3, 3) or points.ndim != 2 or points.shape[1] != 3:
+            raise ValueError("neighbour search needs a 3 x 3 box and n x 3 points")
+        ct, nb = self._ctypes, self._neighbors
+        self._options.cutoff = cutoff
+        status = self._lib.vesin_neighbors(
+            points.ctypes.data_as(self._double), points.shape[0], box.ctypes.data_as(self._double),
+            self._periodic, self._device, self._options, ct.byref(nb), ct.byref(self._error))
+        if status != 0:
+            raise RuntimeError(self._error.value.decode("utf8"))
+        m = nb.length
+        tp, ts, td = self._types
+        if m == 0:
+            return np.empty((0, 2), tp), np.empty((0, 3), ts), np.empty(0, td)
+        address = ct.c_void_p
+        return (_view(ct.cast(nb.pairs, address).value, (m, 2), tp),
+                _view(ct.cast(nb.shifts, address).value, (m, 3), ts),
+                _view(ct.cast(nb.distances, address).value, (m,), td))
 
 
 def _references(ratio, i, j, numbers, usable):
