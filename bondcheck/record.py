@@ -42,7 +42,7 @@ class Crystal:
 
     @property
     def natoms(self) -> int:
-        return int(self.numbers.shape[0])
+        return len(self.numbers)
 
     @property
     def volume(self) -> float:
