@@ -209,6 +209,11 @@ _SYMBOLS = elements.symbols()
 _CAPABLE_Z = frozenset(np.flatnonzero(elements.capable_by_z()).tolist())
 _NOT_EP_Z = frozenset(np.flatnonzero(~elements.electropositive_by_z()).tolist())
 _PAULING = elements.pauling().tolist()
+_VALENCE = elements.valence_by_z().tolist()
+_TARGET = _TARGET_BY_Z.tolist()
+_CAPABLE_BY_Z = elements.capable_by_z()
+_NOT_EP_BY_Z = ~elements.electropositive_by_z()
+_NOT_EP_BY_Z.setflags(write=False)
 # (Z, symbol, block) per atomic number, as a group's element in `_Static`.
 _GROUP_ELEMENT = {k: (k, sym, elements.block(sym)) for k, sym in enumerate(_SYMBOLS) if k}
 
@@ -228,8 +233,12 @@ class _Static:
     group_elements: list[tuple[int, str, str]]  # (Z, symbol, block) per group
     group_weight: list[float]  # occupancy per group
     group_size: np.ndarray  # atoms per group
-    occ_target: np.ndarray  # per atom: occupancy times the shell target
+    occ_target: np.ndarray | None  # per atom: occupancy times the shell target (not when full)
     candidates: tuple  # `_candidates` of the elements present
+    # Every occupancy is 1 (the rule): sums of occupancies over atoms are then
+    # whole numbers, exact in any order, and are taken as counts of atoms.
+    full: bool
+    z_count: list[int]  # atoms per atomic number
 
 
 def _static(crystal: Crystal, sites: Sites, valence: dict[str, int]) -> _Static:
@@ -247,33 +256,42 @@ def _static(crystal: Crystal, sites: Sites, valence: dict[str, int]) -> _Static:
         return last[1]
     zset = set(z.tolist())
     present = sorted([_SYMBOLS[k] for k in zset])
-    val = elements.valence_by_z()
-    if valence:
-        val = val.copy()
-        for el, n in valence.items():
-            val[elements.numbers()[el]] = n
-    electrons = float((occ * val[z]).sum())
-    capable_atom = elements.capable_by_z()[z]
+    z_count = np.bincount(z).tolist()
+    full = not np.count_nonzero(occ != 1.0)
+    if full and not valence:
+        electrons = float(sum(z_count[k] * _VALENCE[k] for k in zset))
+    else:
+        val = elements.valence_by_z()
+        if valence:
+            val = val.copy()
+            for el, n in valence.items():
+                val[elements.numbers()[el]] = n
+        electrons = float((occ * val[z]).sum())
+    capable_atom = _CAPABLE_BY_Z[z]
     # Atoms that are not electropositive (the only cations that may bond to each other).
-    not_ep_atom = ~elements.electropositive_by_z()[z]
+    not_ep_atom = _NOT_EP_BY_Z[z]
     capable_z = _CAPABLE_Z & zset
     not_ep_z = _NOT_EP_Z & zset
     # Groups: one per (site, element), in order of site, then element.
-    gkey = site.astype(np.int64) * 128 + z
+    gkey = site.astype(np.int64, copy=False) * 128 + z
     uniq = sorted(set(gkey.tolist()))
     group_of = np.searchsorted(np.array(uniq), gkey)  # keys are unique and sorted
     groups = [(k // 128, k % 128) for k in uniq]
     group_elements = [_GROUP_ELEMENT[zz] for _site, zz in groups]
-    group_weight = np.bincount(group_of, weights=occ, minlength=len(uniq)).tolist()
     group_size = np.bincount(group_of, minlength=len(uniq))
-    occ_target = occ * _TARGET_BY_Z[z]
+    if full:
+        group_weight = [float(k) for k in group_size.tolist()]
+        occ_target = None
+    else:
+        group_weight = np.bincount(group_of, weights=occ, minlength=len(uniq)).tolist()
+        occ_target = occ * _TARGET_BY_Z[z]
     # Every Count of the structure hands out group_of: read-only, so that no
     # caller can change the remembered one.
     group_of.setflags(write=False)
     out = _Static(
         present, electrons, capable_atom, capable_z, not_ep_atom, not_ep_z,
         group_of, groups, group_elements, group_weight, group_size, occ_target,
-        _candidates(tuple(sorted(zset))),
+        _candidates(tuple(sorted(zset))), full, z_count,
     )
     _LOCAL.static = (key, out)
     return out
@@ -282,7 +300,9 @@ def _static(crystal: Crystal, sites: Sites, valence: dict[str, int]) -> _Static:
 class _Context:
     """Per-structure quantities shared by the candidate partitions."""
 
-    __slots__ = ("crystal", "contacts", "valence_override", "occ", "static", "bonded", "bi", "bj", "bw", "bd")
+    __slots__ = (
+        "crystal", "contacts", "valence_override", "occ", "static", "bonded", "bi", "bj", "bw", "bd", "unit_weight",
+    )
 
     def __init__(self, crystal: Crystal, contacts: Contacts, sites: Sites, valence: dict[str, int]):
         self.crystal = crystal
@@ -295,6 +315,9 @@ class _Context:
         self.bi, self.bj = c.i[c.bonded], c.j[c.bonded]
         self.bw = c.weight[c.bonded]
         self.bd = c.d[c.bonded]
+        # Whole atoms give bond weights of 1 (occupancy products), the rule:
+        # sums of weights are then counts.
+        self.unit_weight = self.static.full and not np.count_nonzero(self.bw != 1.0)
 
     def polyanion_split(self, start: list[str]) -> tuple[list[str], str]:
         """Grow the anion set by elements bonded to anions with a small
@@ -398,11 +421,26 @@ class _Context:
             ends, partner = [ia, ja, ic, jc], [ja, ia, jc, ic]
         else:
             ends, partner = [ia, ja], [ja, ia]
-        n_anion = float(occ[role].sum())
-        shell = float(self.static.occ_target[role].sum())
-        aa_ends = 2.0 * float(bw[aa].sum())
-        cc_e = 2.0 * float(bw[cc].sum()) if cc_any else 0.0
-        per = np.bincount(np.concatenate(ends), weights=occ[np.concatenate(partner)], minlength=n)
+        ends = np.concatenate(ends)
+        st = self.static
+        if st.full:
+            # Whole atoms: the sums over atoms are counts (see _Static.full).
+            n_anion = float(sum([st.z_count[k] for k in anion_z]))
+            shell = float(sum([st.z_count[k] * _TARGET[k] for k in anion_z]))
+            per = np.bincount(ends, minlength=n)
+            if ends.size:  # bincount with weights gives floats, but whole numbers with nothing to add
+                per = per.astype(np.float64)
+        else:
+            n_anion = float(occ[role].sum())
+            shell = float(st.occ_target[role].sum())
+            per = np.bincount(ends, weights=occ[np.concatenate(partner)], minlength=n)
+        if self.unit_weight:
+            # Every bond weight is 1: the sums of weights are counts of bonds.
+            aa_ends = 2.0 * int(np.count_nonzero(aa))
+            cc_e = 2.0 * int(np.count_nonzero(cc)) if cc_any else 0.0
+        else:
+            aa_ends = 2.0 * float(bw[aa].sum())
+            cc_e = 2.0 * float(bw[cc].sum()) if cc_any else 0.0
         vec = self.static.electrons / n_anion
         mean_target = shell / n_anion
         aa_obs = aa_ends / n_anion
@@ -567,8 +605,9 @@ class _Context:
         go, per, cc_any = self.static.group_of, split.per, split.cc_any
         ng = len(self.static.groups)
         ccb_all = None
-        if cc_any and not np.count_nonzero(per != np.rint(per)):
-            # Whole bond counts: any order of summation gives np.mean's value.
+        if cc_any and (self.static.full or not np.count_nonzero(per != np.rint(per))):
+            # Whole bond counts (always so with whole atoms): any order of
+            # summation gives np.mean's value.
             ccb_all = (np.bincount(go, weights=per, minlength=ng) / self.static.group_size).tolist()
         all_saturated = None
         anion_z, weight, override = split.anion_z, self.static.group_weight, self.valence_override
