@@ -55,7 +55,8 @@ class Crystal:
     def label(self, k: int) -> str:
         """Site label of atom k, or element symbol and 1-based index when the
         file gave none."""
-        lab = str(self.labels[k]) if len(self.labels) else ""
+        labels = self.labels
+        lab = str(labels.item(k)) if len(labels) else ""  # item(): no numpy scalar on the way
         if lab:
             return lab
         from .elements import symbols
