@@ -179,6 +179,12 @@ def group_sites(crystal: Crystal, contacts) -> Sites:
                 for s in range(0, apart.size, step):
                     f = apart[s : s + step]
                     r, m = np.nonzero((cls[f, None] == cls) & (np.arange(npos) < f[:, None]))
+                    if r.size * width > 1024:
+                        # Rows agree only where their first distances do:
+                        # comparing those first leaves fewer whole rows.
+                        t0 = table[:, 0]
+                        near = (np.abs(t0[m] - t0[f[r]]) <= ENV_TOL).nonzero()[0]
+                        r, m = r[near], m[near]
                     agree = np.abs(table[m] - table[f[r]]).max(axis=1) <= ENV_TOL
                     best = f.copy()
                     np.minimum.at(best, r[agree], m[agree])
