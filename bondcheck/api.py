@@ -330,8 +330,7 @@ def _site_rows(crystal, sites, c: Count | None, coord, nearest, last, first_out,
     mult = None if sites.multiplicity is None else sites.multiplicity.tolist()
     if c is not None:
         bonds = _group_mean(c.aa_bonds, inv, counts, crowded).tolist()
-        role_first = c.role[first].tolist()
-        group_first = c.group_of[first].tolist()
+        is_anion, group_of = c.role.tolist(), c.group_of.tolist()
         keep = c.closure.keep if c.closure.closes else {}
     rows = []
     for u, k in enumerate(first):
@@ -341,12 +340,12 @@ def _site_rows(crystal, sites, c: Count | None, coord, nearest, last, first_out,
         if c is not None:
             b = bonds[u]
             bond_count = _r3(b)
-            if role_first[u]:
+            if is_anion[k]:
                 role = "anion"
                 charge = _r3(b + valence - target(sym))
             else:
                 role = "cation"
-                g = group_first[u]
+                g = group_of[k]
                 if g in keep:
                     charge = _r3(valence - keep[g])
                 elif keep_opts == {0: 0}:
