@@ -301,7 +301,7 @@ class _Context:
     """Per-structure quantities shared by the candidate partitions."""
 
     __slots__ = (
-        "crystal", "contacts", "valence_override", "occ", "static", "bonded", "bi", "bj", "bw", "bd", "unit_weight",
+        "crystal", "contacts", "valence_override", "occ", "static", "bonded", "bi", "bj", "_bw", "_bd", "unit_weight",
     )
 
     def __init__(self, crystal: Crystal, contacts: Contacts, sites: Sites, valence: dict[str, int]):
@@ -313,11 +313,19 @@ class _Context:
         c = contacts
         self.bonded = c.bonded
         self.bi, self.bj = c.i[c.bonded], c.j[c.bonded]
-        self.bw = c.weight[c.bonded]
-        self.bd = c.d[c.bonded]
-        # Whole atoms give bond weights of 1 (occupancy products), the rule:
-        # sums of weights are then counts.
-        self.unit_weight = self.static.full and not np.count_nonzero(self.bw != 1.0)
+        # Whole atoms give contact weights of 1 (occupancy products), the
+        # rule: sums of bond weights are then counts, and the weights of the
+        # bonds are not needed.
+        self.unit_weight = self.static.full and not np.count_nonzero(c.weight != 1.0)
+        self._bw = None if self.unit_weight else c.weight[c.bonded]
+        self._bd = None
+
+    @property
+    def bd(self) -> np.ndarray:
+        """Bond lengths of the bonds, taken on first use (some counts need none)."""
+        if self._bd is None:
+            self._bd = self.contacts.d[self.bonded]
+        return self._bd
 
     def polyanion_split(self, start: list[str]) -> tuple[list[str], str]:
         """Grow the anion set by elements bonded to anions with a small
@@ -388,7 +396,7 @@ class _Context:
         role = an_z[z]
         occ = self.occ
         n = len(z)
-        bi, bj, bw = self.bi, self.bj, self.bw
+        bi, bj, bw = self.bi, self.bj, self._bw
         rbi, rbj = role[bi], role[bj]
         aa = rbi & rbj
         ca = rbi != rbj
@@ -545,7 +553,7 @@ class _Context:
         z = self.crystal.numbers
         order = 10.0 ** ((rad[z[bi]] + rad[z[bj]] - self.bd[ab]) / PAULING_K)
         extra = np.where(order >= TRIPLE_ORDER, 2.0, np.where(order >= DOUBLE_ORDER, 1.0, 0.0))
-        weighted = self.bw[ab] * extra
+        weighted = extra if self.unit_weight else self._bw[ab] * extra  # 1.0 * extra is extra
         if not np.count_nonzero(planar_atom):
             return 2.0 * float(weighted.sum()), 0.0
         planar = float(self.occ[planar_atom].sum())
@@ -735,10 +743,11 @@ def _search(options, lo: float = -math.inf, hi: float = math.inf):
     as from `_Context._group_options`.
 
     Returns (totals, top): totals maps total -> (cost, path), path a linked
-    list (group, electrons per atom, mixed, previous path) that `_match`
-    unrolls; top is the largest reachable total. Only totals that can still
-    end within [lo, hi] are followed: a state is dropped when even its
-    smallest and largest completions miss the window. Dropping never changes
+    list (group, (cost, electrons per atom, mixed) of its choice, previous
+    path) that `_match` unrolls; top is the largest reachable total. Only
+    totals that can still end within [lo, hi] are followed: a state is
+    dropped when even its smallest and largest completions miss the window.
+    Dropping never changes
     which path wins a kept total (every path to a kept total runs through
     kept states, met in the same order), so the result within the window is
     that of the full enumeration. The enumeration stops after a group that
@@ -788,12 +797,12 @@ def _combine(states, items, g, a=-math.inf, b=math.inf):
         t0 = u0 / UNITS
         if t0 < a or t0 > b:
             continue
-        for u1, (c1, k, mixed) in items:
+        for u1, choice in items:
             u = u0 + u1
-            cost = c0 + c1
+            cost = c0 + choice[0]
             old = get(u)
             if old is None or old[0] > cost:
-                new[u] = (cost, (g, k, mixed, p0))
+                new[u] = (cost, (g, choice, p0))
     return new
 
 
@@ -836,7 +845,7 @@ def _match(totals, needed: float, tol: float):
     cost, path = best
     steps = []
     while path is not None:
-        g, k, mixed, path = path
+        g, (_cost, k, mixed), path = path
         steps.append((g, k, mixed))
     steps.reverse()
     return cost, {g: k for g, k, _m in steps}, [g for g, _k, m in steps if m]
