@@ -11,11 +11,14 @@ environments (rare) end up in one site.
 """
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import numpy as np
 
+from . import elements
 from .arrays import first_index, first_seen
+from .bonds import SEARCH
 from .record import Crystal
 
 SYMPREC = 0.01  # angstrom
@@ -66,6 +69,34 @@ def _positions(crystal: Crystal):
         t = tuple(sorted(combos[p]))
         types[p] = names.setdefault(t, len(names) + 1)
     return inverse, frac[pos_of], types
+
+
+# Atoms closer than this are always among the bond stage's contacts: within
+# SEARCH times the smallest sum of two radii (He-He), with a margin.
+_ALWAYS_CONTACT = 0.98 * SEARCH * 2 * float(elements.radii()[1:].min())
+
+
+def _entries_apart(crystal: Crystal, contacts) -> bool:
+    """True when _positions would surely find each entry a position of its
+    own, decided from the bond stage's contacts without rounding positions.
+
+    Entries whose rounded positions coincide (1/2000 of the cell along each
+    axis) are at most reach = (|a| + |b| + |c|) / 2000 apart.  When reach is
+    below _ALWAYS_CONTACT, such a pair is a contact, for fully occupied atoms
+    (none dropped as alternatives); so when every contact is longer than
+    reach and every occupancy at least 0.999, no two positions coincide.
+    False means only that _positions has to decide."""
+    occ = crystal.occupancy
+    # (np.minimum.reduce(x) is x.min() without the method's Python-level wrapper)
+    if not occ.size or not np.minimum.reduce(occ) >= 0.999:
+        return False
+    (ax, ay, az), (bx, by, bz), (cx, cy, cz) = crystal.cell.tolist()
+    reach = (math.sqrt(ax * ax + ay * ay + az * az) + math.sqrt(bx * bx + by * by + bz * bz)
+             + math.sqrt(cx * cx + cy * cy + cz * cz)) * (1 + 1e-6) / 2000
+    if not reach < _ALWAYS_CONTACT:
+        return False
+    d = contacts.d
+    return not d.size or np.minimum.reduce(d) > reach
 
 
 def find_sites(crystal: Crystal, symprec: float = SYMPREC) -> Sites:
@@ -126,8 +157,11 @@ def group_sites(crystal: Crystal, contacts) -> Sites:
     type by partner type, the same distances within ENV_TOL; the grouping is
     then refined until the partners of the atoms of a group fall in the same
     groups. Sites are numbered in order of their first atom, as with spglib."""
-    pos_index, positions, types = _positions(crystal)
-    npos = positions.shape[0]
+    if _entries_apart(crystal, contacts):  # (the usual case, decided cheaply)
+        pos_index, npos, types = None, crystal.natoms, crystal.numbers.astype(np.int64, copy=False)
+    else:
+        pos_index, positions, types = _positions(crystal)
+        npos = positions.shape[0]
     pi, pj, d = contacts.i, contacts.j, contacts.d
     if pos_index is not None:
         pi, pj = pos_index[pi], pos_index[pj]
