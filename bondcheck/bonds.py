@@ -206,8 +206,15 @@ class _DirectSearch:
         self._double = ctypes.POINTER(ctypes.c_double)
         self._periodic = _PERIODIC.ctypes.data_as(ctypes.POINTER(ctypes.c_bool))
         self._types = (np.dtype(np.uintp).str, np.dtype(np.int32).str, np.dtype(np.float64).str)
-        if np.dtype(np.uintp).itemsize != ctypes.sizeof(ctypes.c_size_t):
-            raise TypeError("size_t is not the size of a pointer")
+        # The neighbour list's length and buffer addresses, read as integers
+        # through a view of its memory (positions from vesin's declaration):
+        # cheaper than reading the ctypes fields and casting each pointer.
+        word = np.dtype(np.uintp).itemsize
+        fields = [getattr(VesinNeighborList, name) for name in ("length", "pairs", "shifts", "distances")]
+        if ctypes.sizeof(ctypes.c_size_t) != word or any(f.size != word or f.offset % word for f in fields):
+            raise TypeError("the neighbour list is laid out otherwise than expected")
+        self._words = np.frombuffer(self._neighbors, dtype=np.uintp)
+        self._at = np.array([f.offset // word for f in fields])
 
     def __del__(self):
         try:
@@ -219,21 +226,18 @@ class _DirectSearch:
         # points and box: C-contiguous float64, as the C function reads them
         if box.shape != (3, 3) or points.ndim != 2 or points.shape[1] != 3:
             raise ValueError("neighbour search needs a 3 x 3 box and n x 3 points")
-        ct, nb = self._ctypes, self._neighbors
+        ct = self._ctypes
         self._options.cutoff = cutoff
         status = self._lib.vesin_neighbors(
             points.ctypes.data_as(self._double), points.shape[0], box.ctypes.data_as(self._double),
-            self._periodic, self._device, self._options, ct.byref(nb), ct.byref(self._error))
+            self._periodic, self._device, self._options, ct.byref(self._neighbors), ct.byref(self._error))
         if status != 0:
             raise RuntimeError(self._error.value.decode("utf8"))
-        m = nb.length
+        m, pairs, shifts, distances = self._words[self._at].tolist()
         tp, ts, td = self._types
         if m == 0:
             return np.empty((0, 2), tp), np.empty((0, 3), ts), np.empty(0, td)
-        address = ct.c_void_p
-        return (_view(ct.cast(nb.pairs, address).value, (m, 2), tp),
-                _view(ct.cast(nb.shifts, address).value, (m, 3), ts),
-                _view(ct.cast(nb.distances, address).value, (m,), td))
+        return _view(pairs, (m, 2), tp), _view(shifts, (m, 3), ts), _view(distances, (m,), td)
 
 
 def _references(ratio, i, j, numbers, usable):
