@@ -223,9 +223,10 @@ class _DirectSearch:
             pass
 
     def __call__(self, points: np.ndarray, box: np.ndarray, cutoff: float):
-        # points and box: C-contiguous float64, as the C function reads them
-        if box.shape != (3, 3) or points.ndim != 2 or points.shape[1] != 3:
-            raise ValueError("neighbour search needs a 3 x 3 box and n x 3 points")
+        # (the C function reads the memory as rows of three doubles)
+        if (box.shape != (3, 3) or points.ndim != 2 or points.shape[1] != 3 or box.dtype != np.float64
+                or points.dtype != np.float64 or not (box.flags.c_contiguous and points.flags.c_contiguous)):
+            raise ValueError("neighbour search needs a 3 x 3 box and n x 3 points, C-ordered float64")
         ct = self._ctypes
         self._options.cutoff = cutoff
         status = self._lib.vesin_neighbors(
