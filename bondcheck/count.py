@@ -383,9 +383,9 @@ class _Context:
 
     def evaluate(self, anions: list[str], why: str, close_invalid: bool = True) -> Count:
         """The count of one anion set. close_invalid: look for a closure of an
-        implausible split too (the user's anion set is reported as it counts);
-        without it such a split gets Closure(False), as the choice among the
-        candidates gives it whatever it closes to."""
+        implausible split too (the user's anion set is reported as it
+        counts); without it such a split gets Closure(False) at once, as among
+        the candidates an implausible split never counts as closing."""
         cr = self.crystal
         z = cr.numbers
         nums = elements.numbers()
