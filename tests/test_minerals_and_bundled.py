@@ -155,3 +155,33 @@ def test_checked_together_as_one_at_a_time(minerals, pmg_structures):
             assert a == b, c.name
         assert together[3].status == "error" and together[3].error == "no atoms in the structure"
         assert sum(r.status == "ok" for r in together) == len(crystals) - 1
+
+
+def test_direct_neighbour_search_equals_vesin_wrapper(minerals, pmg_structures):
+    """The neighbour search through vesin's C entry point returns the pairs,
+    shifts and distances of vesin's own Python wrapper, in the same order, on
+    ase's bundled COD minerals and pymatgen's bundled structures (the direct
+    call is used only for the vesin versions it was checked with)."""
+    import numpy as np
+
+    from bondcheck import bonds
+    from bondcheck.read import read
+
+    direct = bonds._direct_search()
+    if direct is None:
+        pytest.skip("installed vesin is not a version the direct call was checked with")
+    wrapped = bonds._WrappedSearch()
+    crystals = [c for f in sorted(minerals.glob("*.cif")) for c in read(f)]
+    crystals += [c for f in sorted(pmg_structures.glob("*.json")) for c in read(f)]
+    assert len(crystals) > 20
+    seen = 0
+    for c in crystals:
+        cell = np.ascontiguousarray(c.cell, dtype=np.float64)
+        pts = np.ascontiguousarray(c.frac @ cell, dtype=np.float64)
+        for cutoff in (3.0, 5.5):
+            a = [np.array(x) for x in wrapped(pts, cell, cutoff)]
+            b = [np.array(x) for x in direct(pts, cell, cutoff)]  # copies: views die at the next search
+            for x, y in zip(a, b):
+                assert x.dtype == y.dtype and np.array_equal(x, y), c.name
+            seen += len(a[0])
+    assert seen > 1000
