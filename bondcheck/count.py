@@ -653,7 +653,10 @@ def _kept_options(z: int, ccb: float, overridden: bool, saturated: bool) -> tupl
         if saturated:
             opts = {0: 0}
         return tuple((ccb + k, c) for k, c in opts.items())
-    return tuple((k, c) for k, c in opts.items() if k >= ccb - 1e-6)
+    # (as floats, like the p-block options above: option sets that compare
+    # equal then also hand back the same types, whichever was met first in
+    # the caches keyed by them)
+    return tuple((float(k), c) for k, c in opts.items() if k >= ccb - 1e-6)
 
 
 _FACTS: dict[int, tuple] = {}
