@@ -593,13 +593,12 @@ def _atom_column(block):
     return None
 
 
-def _atom_loop(block, column) -> tuple[list[str], list[str]]:
-    """Lower-case atom-site tags (underscore form) and the flat list of
-    values; ``column`` is the block's :func:`_atom_column`."""
+def _atom_loop(block, column) -> tuple[tuple[str, ...], list[str]]:
+    """The atom-site tags as written and the flat list of values; ``column``
+    is the block's :func:`_atom_column`."""
     loop = column.get_loop()
     if loop is not None:
-        tags = [t.lower().replace("_atom_site.", "_atom_site_", 1) for t in loop.tags]
-        return tags, loop.values
+        return tuple(loop.tags), loop.values
     # atom sites given as single key-value pairs (one atom)
     tags, values = [], []
     for item in block:
@@ -609,7 +608,16 @@ def _atom_loop(block, column) -> tuple[list[str], list[str]]:
             if tag.startswith("_atom_site_") and not tag.startswith("_atom_site_aniso"):
                 tags.append(tag)
                 values.append(pair[1])
-    return tags, values
+    return tuple(tags), values
+
+
+@lru_cache(maxsize=1024)
+def _site_columns(tags: tuple[str, ...]) -> tuple[tuple[int | None, ...], bool]:
+    """Where the columns of _SITE_TAGS are among an atom-site loop's tags
+    (None for those absent), and whether Cartesian coordinates are given.
+    Files from one program share their tags, so this is worked out once."""
+    col = {t.lower().replace("_atom_site.", "_atom_site_", 1): i for i, t in enumerate(tags)}
+    return tuple(map(col.get, _SITE_TAGS)), "_atom_site_cartn_x" in col
 
 
 def _unquote(v: str) -> str:
@@ -856,6 +864,12 @@ class _Group(NamedTuple):
     tran: np.ndarray     # (m, 3) translation parts in [0, 1)
     table: np.ndarray    # (m, m) index of the product of operations i and j
     completed: bool      # operations had to be added to close the group
+    # (3, 3m) the rotations side by side, transposed: row x of ``frac @ ops``
+    # holds the rotated images of site x, operation after operation
+    ops: np.ndarray
+    # the images :func:`_expand` keeps of a site, by the site's stabiliser
+    # (its row of operations that leave it in place, as bytes); filled as met
+    kept: dict
 
 
 def _group(ops: list[gemmi.Op]) -> _Group:
@@ -900,9 +914,10 @@ def _group(ops: list[gemmi.Op]) -> _Group:
     t2 = (np.einsum("iab,jb->ija", rot, tran) + tran[:, None, :]).reshape(-1, 3) % _DEN
     by_key = np.argsort(keys)
     table = by_key[np.searchsorted(keys[by_key], _encode(r2, t2))].reshape(len(keys), len(keys))
-    group = _Group(rot.astype(np.float64), tran.astype(np.float64) / _DEN, table,
-                   len(keys) != n_given)
-    for a in (group.rot, group.tran, group.table):
+    rot = rot.astype(np.float64)
+    group = _Group(rot, tran.astype(np.float64) / _DEN, table, len(keys) != n_given,
+                   np.ascontiguousarray(rot.transpose(2, 0, 1).reshape(3, -1)), {})
+    for a in (group.rot, group.tran, group.table, group.ops):
         a.setflags(write=False)  # cached and shared between calls
     return group
 
@@ -1047,23 +1062,40 @@ def _expand(frac: np.ndarray, cell: np.ndarray, group: _Group,
     MERGE_TOL of x, that is when g lies in the coset h S of the site's
     stabiliser S; of each coset the image with the lowest index is kept.
     """
-    rot, tran = group.rot, group.tran
-    n, m = len(frac), len(rot)
+    n, m = len(frac), len(group.rot)
     if m == 1:  # the identity alone (P 1)
         return (frac if inside else _wrap(frac)), None
-    pos = np.einsum("kij,nj->nki", rot, frac) + tran  # (n, m, 3)
+    pos = (frac @ group.ops).reshape(n, m, 3)
+    pos += group.tran
     d = pos - frac[:, None, :]
     d -= np.rint(d)
-    stab = np.einsum("...i,ij,...j->...", d, cell @ cell.T, d) < MERGE_TOL ** 2  # (n, m)
+    d = d @ cell
+    d *= d
+    stab = d.sum(2) < MERGE_TOL ** 2  # (n, m): the operations that keep each site in place
     special = np.nonzero(stab.sum(1) > 1)[0]
     if len(special) == 0:  # all sites on general positions
         return _wrap(pos.reshape(n * m, 3)), np.repeat(np.arange(n), m)
     keep = np.ones((n, m), dtype=bool)
-    first = np.arange(m)
-    for i in special:
-        keep[i] = group.table[:, stab[i]].min(1) == first
+    for i in special.tolist():
+        keep[i] = _kept_images(group, stab[i])
     site, image = np.nonzero(keep)
     return _wrap(pos[site, image]), site
+
+
+_MAX_KEPT = 256  # stabilisers remembered per group (a group has a few dozen site symmetries)
+
+
+def _kept_images(group: _Group, stab: np.ndarray) -> np.ndarray:
+    """Of a site's images under each operation g, those :func:`_expand` keeps:
+    g is the lowest index in its coset g S (S the operations in ``stab``)."""
+    key = stab.tobytes()
+    kept = group.kept.get(key)
+    if kept is None:
+        kept = group.table[:, stab].min(1) == np.arange(len(stab))
+        kept.setflags(write=False)
+        if len(group.kept) < _MAX_KEPT:
+            group.kept[key] = kept
+    return kept
 
 
 def _count_images(frac: np.ndarray, cell: np.ndarray, group: _Group) -> int:
@@ -1191,10 +1223,13 @@ def _duplicate_sites(frac: np.ndarray, cell: np.ndarray, group: _Group, numbers:
     if not sel.any():
         return None
     rows, cols = rows[sel], cols[sel]
-    d = np.einsum("kij,pj->pki", group.rot, frac[rows]) + group.tran - frac[cols][:, None, :]  # (p, m, 3)
+    d = (frac[rows] @ group.ops).reshape(len(rows), -1, 3)  # (p, m, 3)
+    d += group.tran
+    d -= frac[cols][:, None, :]
     d -= np.rint(d)
     d = d @ cell
-    near = ((d * d).sum(2) < MERGE_TOL ** 2).any(1)
+    d *= d
+    near = (d.sum(2) < MERGE_TOL ** 2).any(1)
     if not near.any():
         return None
     dup = np.zeros(len(frac), dtype=bool)
@@ -1239,11 +1274,10 @@ def _crystal_from_block(block, column, source: str, max_atoms: int = limits.MAX_
     nrow = len(values) // ncol if ncol else 0
     if nrow == 0:
         raise StructureError("truncated CIF: the atom-site loop has no values")
-    col = {t: i for i, t in enumerate(tags)}
-    xs, ys, zs, labels, types, occ_raw, flags = [
-        None if i is None else values[i::ncol] for i in map(col.get, _SITE_TAGS)]
+    where, cartesian = _site_columns(tags)
+    xs, ys, zs, labels, types, occ_raw, flags = [None if i is None else values[i::ncol] for i in where]
     if xs is None or ys is None or zs is None:
-        if "_atom_site_cartn_x" in col:
+        if cartesian:
             raise StructureError("only Cartesian atom coordinates given; fractional ones are needed")
         raise StructureError("no fractional atom coordinates (_atom_site_fract_x/y/z)")
     if labels is None:
