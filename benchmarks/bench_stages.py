@@ -7,8 +7,9 @@ Options(symmetry=False).
     python benchmarks/bench_stages.py --limit 1000
 
 Prints ms per file for read, bonds (validation, neighbour list, criterion),
-sites (grouping by environment), count, per-atom values, diagnose (which
-counts variants of the structure again) and result rows, then the whole of
+sites (grouping by environment), count, per-atom values (grouped per site
+and element, and the fragile sites), diagnose (which counts variants of the
+structure again) and result rows, then the whole of
 check_crystals plus Result.to_dict for comparison.  The run is made twice and
 the second is reported (the first warms caches and imports).  Skips with a
 message when the corpus is absent.
@@ -49,17 +50,18 @@ def run(files, opts, spent) -> None:
         cn = [api.count(c, k, s, opts.anions, opts.valence) for c, k, s in zip(cs, con, si)]
         spent["count"] += clk() - t
         t = clk()
-        pa = [api.per_atom(k, c.natoms, c.occupancy) for c, k in zip(cs, con)]
-        fl = [api._fragile_sites(c, k, s, n, opts, p[4]) for c, k, s, n, p in zip(cs, con, si, cn, pa)]
+        gr = [api._site_groups(c, s) for c, s in zip(cs, si)]
+        pa = [api.per_atom(k, c.natoms, c.occupancy, g[1], g[3]) for c, k, g in zip(cs, con, gr)]
+        fl = [api._fragile_sites(c, k, s, n, opts) for c, k, s, n in zip(cs, con, si, cn)]
         spent["per_atom"] += clk() - t
         t = clk()
         for c, k, s, n, f in zip(cs, con, si, cn, fl):
             api.diagnose(c, k, s, n, f, opts.anions, opts.valence, opts.criterion)
         spent["diagnose"] += clk() - t
         t = clk()
-        for c, s, n, p in zip(cs, si, cn, pa):
+        for c, s, n, g, p in zip(cs, si, cn, gr, pa):
             api.formula_of(c)
-            api._site_rows(c, s, n, *p)
+            api._site_rows(c, s, n, g, p)
         spent["rows"] += clk() - t
 
 

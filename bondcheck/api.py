@@ -20,7 +20,7 @@ from typing import Any, Iterable, Iterator
 import numpy as np
 
 from . import elements
-from .arrays import filled, first_index, first_seen
+from .arrays import first_seen_and_index, group_mean
 from .bonds import Criterion, find_contacts, per_atom
 from .count import Count, _element_facts, count, target
 from .diagnose import diagnose
@@ -223,8 +223,9 @@ def _count_stage(crystal: Crystal, contacts, sites, options: Options, res: Resul
     """Count, diagnose and fill in the result (left untouched if a
     StructureError is raised)."""
     c = count(crystal, contacts, sites, options.anions, options.valence)
-    coord, nearest, last, first_out, fragile = per_atom(contacts, crystal.natoms, crystal.occupancy)
-    fragile_labels = _fragile_sites(crystal, contacts, sites, c, options, fragile)
+    groups = _site_groups(crystal, sites)
+    values = per_atom(contacts, crystal.natoms, crystal.occupancy, groups[1], groups[3])
+    fragile_labels = _fragile_sites(crystal, contacts, sites, c, options)
     verdict, found, components = diagnose(
         crystal, contacts, sites, c, fragile_labels, options.anions, options.valence, options.criterion
     )
@@ -248,7 +249,7 @@ def _count_stage(crystal: Crystal, contacts, sites, options: Options, res: Resul
         res.residual = _r3(c.residual)
         res.electrons_per_formula = _r3(c.electrons / z_cell)
         res.anions_per_formula = _r3(c.n_anion / z_cell)
-    res.sites = _site_rows(crystal, sites, c, coord, nearest, last, first_out, fragile)
+    res.sites = _site_rows(crystal, sites, c, groups, values)
 
 
 def _validate(crystal: Crystal) -> None:
@@ -267,7 +268,7 @@ def _validate(crystal: Crystal) -> None:
         raise StructureError("unknown element in the structure")
 
 
-def _fragile_sites(crystal, contacts, sites, c: Count | None, options: Options, fragile) -> list[str]:
+def _fragile_sites(crystal, contacts, sites, c: Count | None, options: Options) -> list[str]:
     """Sites where a contact that enters the count (anion-anion, or between two
     cations that may bond) changes within the criterion wobble."""
     if c is None:
@@ -286,50 +287,39 @@ def _fragile_sites(crystal, contacts, sites, c: Count | None, options: Options, 
     return [crystal.label(int(rep[s])) for s in sorted(found)]
 
 
-
-def _group_mean(x: np.ndarray, inv: np.ndarray, counts: np.ndarray, crowded: list[int]) -> np.ndarray:
-    """Mean of x over each group, equal to np.mean of the group's values:
-    bincount adds in order as np.mean does below 8 values, and any order
-    gives the same sum of whole numbers. crowded: the groups of 8 or more."""
-    out = np.bincount(inv, weights=x, minlength=counts.size) / counts
-    if crowded and not (x == np.rint(x)).all():
-        for g in crowded:
-            out[g] = np.mean(x[inv == g])
-    return out
+def _site_groups(crystal, sites) -> tuple:
+    """Atoms grouped by (site, element), numbered in order of their first
+    atom: ((site, element) per atom, group number per atom, first atom of
+    each group, atoms per group)."""
+    keys = list(zip(sites.site.tolist(), crystal.numbers.tolist()))
+    group_list, first = first_seen_and_index(keys)
+    group = np.array(group_list, dtype=np.int64)
+    return keys, group, first, np.bincount(group, minlength=len(first))
 
 
-def _group_extreme(x: np.ndarray, inv: np.ndarray, ng: int, fn) -> np.ndarray:
-    """Smallest (fn=np.fmin) or largest (np.fmax) value per group ignoring
-    NaN; NaN where a group has none."""
-    out = filled(ng, np.nan)
-    fn.at(out, inv, x)
-    return out
-
-
-def _site_rows(crystal, sites, c: Count | None, coord, nearest, last, first_out, fragile) -> list[dict]:
-    """One row per (site, element), in order of the first atom of each."""
+def _site_rows(crystal, sites, c: Count | None, groups: tuple, values: tuple) -> list[dict]:
+    """One row per (site, element) group of `_site_groups`, in order of the
+    first atom of each; values: `per_atom` of the groups."""
     isfinite = math.isfinite
 
     def r3_all(values: np.ndarray) -> list[float | None]:  # _r3 of each value
         return [(x + 0.0 if x.is_integer() else round(x, 3) + 0.0) if isfinite(x) else None for x in values.tolist()]
 
-    # Groups of atoms by (site, element), numbered in order of their first atom.
-    keys = list(zip(sites.site.tolist(), crystal.numbers.tolist()))
-    inv_list = first_seen(keys)
-    first = first_index(inv_list)
-    ng = len(first)
-    inv = np.array(inv_list, dtype=np.int64)
-    counts = np.bincount(inv, minlength=ng)
-    crowded = [u for u, n in enumerate(counts.tolist()) if n >= 8]
-    occ = _group_mean(crystal.occupancy, inv, counts, crowded).tolist()
-    coordination = r3_all(_group_mean(coord, inv, counts, crowded))
-    near = r3_all(_group_extreme(nearest, inv, ng, np.fmin))
-    lastb = r3_all(_group_extreme(last, inv, ng, np.fmax))
-    firstu = r3_all(_group_extreme(first_out, inv, ng, np.fmin))
-    frag = {inv_list[k] for k in fragile.nonzero()[0].tolist()}  # groups with a fragile atom
+    keys, group, first, counts = groups
+    coord, nearest, last, first_out, fragile = values
+    crowded = (counts >= 8).nonzero()[0].tolist()
+    if np.count_nonzero(crystal.occupancy != 1.0):
+        occ = group_mean(crystal.occupancy, group, counts, crowded).tolist()
+    else:
+        occ = [1.0] * len(first)
+    coordination = r3_all(coord)
+    near = r3_all(nearest)
+    lastb = r3_all(last)
+    firstu = r3_all(first_out)
+    frag = fragile.tolist()
     mult = None if sites.multiplicity is None else sites.multiplicity.tolist()
     if c is not None:
-        bonds = _group_mean(c.aa_bonds, inv, counts, crowded).tolist()
+        bonds = group_mean(c.aa_bonds, group, counts, crowded).tolist()
         is_anion, group_of = c.role.tolist(), c.group_of.tolist()
         keep = c.closure.keep if c.closure.closes else {}
     rows = []
@@ -364,7 +354,7 @@ def _site_rows(crystal, sites, c: Count | None, coord, nearest, last, first_out,
             "nearest": near[u],
             "last_bonded": lb,
             "first_unbonded": fu,
-            "fragile": u in frag,
+            "fragile": frag[u],
             "gap": _r3(fu - lb) if fu and lb else None,
         })
     return rows

@@ -28,7 +28,7 @@ from dataclasses import dataclass, replace
 import numpy as np
 
 from . import elements
-from .arrays import filled, first_seen
+from .arrays import filled, first_seen, group_mean
 from .record import Crystal, StructureError
 
 CORE_RATIO = 1.15
@@ -388,27 +388,54 @@ def rescaled(crystal: Crystal, contacts: Contacts, criterion: Criterion) -> Cont
     return replace(c, bonded=bonded)
 
 
-def per_atom(contacts: Contacts, n_atoms: int, occupancy: np.ndarray):
+def per_atom(contacts: Contacts, n_atoms: int, occupancy: np.ndarray, group=None, counts=None):
     """Per-atom coordination (occupancy weighted), nearest ratio, last bonded
     ratio, first unbonded ratio (NaN where an atom has no such contact) and
-    fragility."""
+    fragility.
+
+    Given `group` (an int array numbering each atom's group 0..g-1) and
+    `counts` (atoms per group), the same per group of atoms, as the per-atom
+    values give them: the mean coordination (arrays.group_mean), the smallest
+    nearest and first unbonded ratio, the largest last bonded ratio, and
+    whether any atom of the group is fragile.  The group values come from
+    the contacts directly, without per-atom values on the way, except the
+    coordination when some occupancy is not 1: that is summed per atom
+    first, as the mean of the per-atom values adds it."""
     c = contacts
-    # Both ends of every contact: atom, partner, ratio, bonded, usable.
-    both_i = np.concatenate([c.i, c.j])
-    both_j = np.concatenate([c.j, c.i])
-    ratio2 = np.concatenate([c.ratio, c.ratio])
-    bonded2 = np.concatenate([c.bonded, c.bonded])
-    usable2 = ~np.concatenate([c.ionic_pair, c.ionic_pair])
-    at, r = both_i[bonded2], ratio2[bonded2]
-    coord = np.bincount(at, weights=occupancy[both_j[bonded2]], minlength=n_atoms)
-    last = filled(n_atoms, np.nan)
-    np.fmax.at(last, at, r)
-    nearest = filled(n_atoms, np.nan)
-    np.fmin.at(nearest, both_i[usable2], ratio2[usable2])
-    out = usable2 & ~bonded2
-    first_out = filled(n_atoms, np.nan)
-    np.fmin.at(first_out, both_i[out], ratio2[out])
-    fragile = np.zeros(n_atoms, dtype=bool)
-    fragile[c.i[c.fragile]] = True
-    fragile[c.j[c.fragile]] = True
+    if group is None:  # each atom a group of its own
+        group = np.arange(n_atoms)
+        counts = np.ones(n_atoms, dtype=np.int64)
+    ng = counts.size
+    # Both ends of every contact: atom, its group, ratio, bonded.
+    ends = np.concatenate((c.i, c.j))
+    group2 = group[ends]
+    ratio2 = np.concatenate((c.ratio, c.ratio))
+    bonded2 = np.concatenate((c.bonded, c.bonded))
+    bonded_group = group2[bonded2]
+    if not np.count_nonzero(occupancy != 1.0):
+        # Every occupancy 1: an atom's coordination is its number of bonds,
+        # and the sum over a group the group's number of bond ends.
+        coord = np.bincount(bonded_group, minlength=ng) / counts
+    else:
+        partner = np.concatenate((c.j, c.i))
+        atom_coord = np.bincount(ends[bonded2], weights=occupancy[partner[bonded2]], minlength=n_atoms)
+        crowded = (counts >= 8).nonzero()[0].tolist()
+        coord = group_mean(atom_coord, group, counts, crowded)
+    last = filled(ng, np.nan)
+    np.fmax.at(last, bonded_group, ratio2[bonded2])
+    nearest = filled(ng, np.nan)
+    if np.count_nonzero(c.ionic_pair):
+        usable2 = ~np.concatenate((c.ionic_pair, c.ionic_pair))
+        np.fmin.at(nearest, group2[usable2], ratio2[usable2])
+        out = usable2 & ~bonded2
+    else:
+        np.fmin.at(nearest, group2, ratio2)
+        out = ~bonded2
+    first_out = filled(ng, np.nan)
+    np.fmin.at(first_out, group2[out], ratio2[out])
+    fragile = np.zeros(ng, dtype=bool)
+    (picked,) = c.fragile.nonzero()
+    if picked.size:
+        fragile[group[c.i[picked]]] = True
+        fragile[group[c.j[picked]]] = True
     return coord, nearest, last, first_out, fragile
