@@ -25,16 +25,22 @@ class Component:
     cluster: dict | None = None  # deltahedral cluster data when it is one
 
     def to_dict(self) -> dict:
+        deg = self.degree
         d = {
             "atoms": len(self.atoms),
             "formula": self.formula,
-            "dimensionality": f"{self.dimensionality}D",
+            "dimensionality": _DIM_TEXT[self.dimensionality],
             "motif": self.motif,
-            "mean_bonds": round(self.degree, 3),
+            # (a whole number rounds to itself: most components are lone anions, 0.0)
+            "mean_bonds": deg if deg.is_integer() else round(deg, 3),
         }
         if self.cluster:
             d["cluster"] = self.cluster
         return d
+
+
+# Dimensionality as to_dict gives it (the rank of a component's lattice, 0..3).
+_DIM_TEXT = ("0D", "1D", "2D", "3D")
 
 
 def periodic_components(n: int, bi, bj, shift) -> tuple[np.ndarray, dict[int, int]]:
