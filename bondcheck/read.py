@@ -1051,12 +1051,14 @@ def _find_spacegroup(name: str, alpha: float, gamma: float, prefer: str):
 # ---- symmetry expansion ---------------------------------------------------
 
 def _expand(frac: np.ndarray, cell: np.ndarray, group: _Group,
-            inside: bool = False) -> tuple[np.ndarray, np.ndarray | None]:
+            inside: bool = False) -> tuple[np.ndarray, np.ndarray | None, np.ndarray | None]:
     """All images of the sites in the unit cell.
 
-    Returns the positions and, for each, the index of its site (None when
-    the group is the identity alone and positions are the sites themselves).
-    ``inside`` tells that all coordinates are already in [0, 1).
+    Returns the positions, for each the index of its site, and the images of
+    each site under each operation before merging and wrapping, (n, m, 3)
+    (both None when the group is the identity alone and positions are the
+    sites themselves).  ``inside`` tells that all coordinates are already in
+    [0, 1).
 
     Images g x and h x of a site x are one atom when h^-1 g x is within
     MERGE_TOL of x, that is when g lies in the coset h S of the site's
@@ -1064,7 +1066,7 @@ def _expand(frac: np.ndarray, cell: np.ndarray, group: _Group,
     """
     n, m = len(frac), len(group.rot)
     if m == 1:  # the identity alone (P 1)
-        return (frac if inside else _wrap(frac)), None
+        return (frac if inside else _wrap(frac)), None, None
     pos = (frac @ group.ops).reshape(n, m, 3)
     pos += group.tran
     d = pos - frac[:, None, :]
@@ -1074,12 +1076,12 @@ def _expand(frac: np.ndarray, cell: np.ndarray, group: _Group,
     stab = d.sum(2) < MERGE_TOL ** 2  # (n, m): the operations that keep each site in place
     special = np.nonzero(stab.sum(1) > 1)[0]
     if len(special) == 0:  # all sites on general positions
-        return _wrap(pos.reshape(n * m, 3)), np.repeat(np.arange(n), m)
+        return _wrap(pos.reshape(n * m, 3)), np.repeat(np.arange(n), m), pos
     keep = np.ones((n, m), dtype=bool)
     for i in special.tolist():
         keep[i] = _kept_images(group, stab[i])
     site, image = np.nonzero(keep)
-    return _wrap(pos[site, image]), site
+    return _wrap(pos[site, image]), site, pos
 
 
 _MAX_KEPT = 256  # stabilisers remembered per group (a group has a few dozen site symmetries)
@@ -1212,19 +1214,19 @@ def _duplicates(pos: np.ndarray, cell: np.ndarray, widths: list[float], numbers:
     return dup
 
 
-def _duplicate_sites(frac: np.ndarray, cell: np.ndarray, group: _Group, numbers: np.ndarray,
+def _duplicate_sites(frac: np.ndarray, images: np.ndarray, cell: np.ndarray, numbers: np.ndarray,
                      occ: np.ndarray) -> np.ndarray | None:
     """Sites that repeat an earlier site of the same element: the site lies
-    within MERGE_TOL of an image of the earlier one, so that its whole orbit
-    falls on that one's (occupancies adding to more than 1, as in
-    :func:`_duplicates`).  A mask over the sites, or None."""
+    within MERGE_TOL of an image of the earlier one (``images`` as
+    :func:`_expand` gives them), so that its whole orbit falls on that one's
+    (occupancies adding to more than 1, as in :func:`_duplicates`).  A mask
+    over the sites, or None."""
     rows, cols = _pairs(len(frac))
     sel = (numbers[cols] == numbers[rows]) & (occ[rows] + occ[cols] > 1.0 + OCC_TOL)
     if not sel.any():
         return None
     rows, cols = rows[sel], cols[sel]
-    d = (frac[rows] @ group.ops).reshape(len(rows), -1, 3)  # (p, m, 3)
-    d += group.tran
+    d = images[rows]  # (p, m, 3)
     d -= frac[cols][:, None, :]
     d -= np.rint(d)
     d = d @ cell
@@ -1335,7 +1337,7 @@ def _crystal_from_block(block, column, source: str, max_atoms: int = limits.MAX_
         limits.check_atoms(min(_count_images(frac, cell, group) for group, _ in candidates), max_atoms)
     best = None
     for group, setting in candidates:
-        pos, site = _expand(frac, cell, group, inside)
+        pos, site, images = _expand(frac, cell, group, inside)
         if best is not None:
             # only a space-group name with two origin choices: take the
             # setting that puts more atoms on special positions, then the one
@@ -1344,8 +1346,8 @@ def _crystal_from_block(block, column, source: str, max_atoms: int = limits.MAX_
                 continue
             if len(pos) == len(best[0]) and _min_distance(pos, cell) <= _min_distance(best[0], cell):
                 continue
-        best = (pos, site, setting, group)
-    pos, site, setting, group = best
+        best = (pos, site, images, setting, group)
+    pos, site, images, setting, group = best
     completed, nops = group.completed, len(group.rot)
 
     labels = np.array(labels)
@@ -1355,7 +1357,7 @@ def _crystal_from_block(block, column, source: str, max_atoms: int = limits.MAX_
     dup = None
     if len(set(numbers.tolist())) < nrow:
         if site is not None and nrow <= _FEW:
-            dup = _duplicate_sites(frac, cell, group, numbers, occ)
+            dup = _duplicate_sites(frac, images, cell, numbers, occ)
             dup = None if dup is None else dup[site]
         else:
             dup = False
