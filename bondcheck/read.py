@@ -41,6 +41,9 @@ OCC_TOL = 1e-3
 # Occupancies are refined to two or three decimals; a smaller one is a slip
 # (or a value made to divide by).
 MIN_OCCUPANCY = 1e-4
+# Squared lengths are summed as products with this (d @ _ONES3): numpy's
+# sum over an axis of three is several times slower on (n, m, 3) arrays.
+_ONES3 = np.ones(3)
 
 # What no crystal does; beyond these the input is wrong (or hostile) and the
 # later stages would spend minutes on it.  Common practice, no source:
@@ -761,10 +764,11 @@ def _check_widths(cell: np.ndarray) -> tuple[float, list[float]]:
     return vol, widths
 
 
-def _check_density(vol: float, occ: np.ndarray) -> None:
-    """Reject more atoms per volume than any solid holds (lengths in nm, say)."""
+def _check_density(vol: float, occ: np.ndarray, whole: bool = False) -> None:
+    """Reject more atoms per volume than any solid holds (lengths in nm, say).
+    ``whole``: every occupancy is 1."""
     n = len(occ)
-    weighted = float(np.add.reduce(occ))  # occ.sum() without its Python-level wrapper
+    weighted = float(n) if whole else float(np.add.reduce(occ))  # (occ.sum() without its Python-level wrapper)
     if weighted > MAX_DENSITY * vol or n > MAX_ENTRY_DENSITY * vol:
         raise StructureError(
             f"implausible cell: {weighted:.4g} atoms in {vol:.4g} A^3 ({weighted / vol:.3g} per A^3, "
@@ -1073,7 +1077,7 @@ def _expand(frac: np.ndarray, cell: np.ndarray, group: _Group,
     d -= np.rint(d)
     d = d @ cell
     d *= d
-    stab = d.sum(2) < MERGE_TOL ** 2  # (n, m): the operations that keep each site in place
+    stab = d @ _ONES3 < MERGE_TOL ** 2  # (n, m): the operations that keep each site in place
     special = np.nonzero(stab.sum(1) > 1)[0]
     if len(special) == 0:  # all sites on general positions
         return _wrap(pos.reshape(n * m, 3)), np.repeat(np.arange(n), m), pos
@@ -1124,7 +1128,6 @@ def _count_images(frac: np.ndarray, cell: np.ndarray, group: _Group) -> int:
 # pairs of one element), so the quick test never decides otherwise than the
 # full one.
 _APART = (MERGE_TOL + 1e-6) ** 2
-_ONES3 = np.ones(3)
 _STEPS = np.array([[-1], [0], [1]])
 _FEW = 64  # up to this many atoms, every pair is looked at
 
@@ -1215,14 +1218,17 @@ def _duplicates(pos: np.ndarray, cell: np.ndarray, widths: list[float], numbers:
 
 
 def _duplicate_sites(frac: np.ndarray, images: np.ndarray, cell: np.ndarray, numbers: np.ndarray,
-                     occ: np.ndarray) -> np.ndarray | None:
+                     occ: np.ndarray, whole: bool) -> np.ndarray | None:
     """Sites that repeat an earlier site of the same element: the site lies
     within MERGE_TOL of an image of the earlier one (``images`` as
     :func:`_expand` gives them), so that its whole orbit falls on that one's
     (occupancies adding to more than 1, as in :func:`_duplicates`).  A mask
-    over the sites, or None."""
+    over the sites, or None.  ``whole``: every occupancy is 1 (any two add
+    to more than 1)."""
     rows, cols = _pairs(len(frac))
-    sel = (numbers[cols] == numbers[rows]) & (occ[rows] + occ[cols] > 1.0 + OCC_TOL)
+    sel = numbers[cols] == numbers[rows]
+    if not whole:
+        sel &= occ[rows] + occ[cols] > 1.0 + OCC_TOL
     if not sel.any():
         return None
     rows, cols = rows[sel], cols[sel]
@@ -1231,7 +1237,7 @@ def _duplicate_sites(frac: np.ndarray, images: np.ndarray, cell: np.ndarray, num
     d -= np.rint(d)
     d = d @ cell
     d *= d
-    near = (d.sum(2) < MERGE_TOL ** 2).any(1)
+    near = (d @ _ONES3 < MERGE_TOL ** 2).any(1)
     if not near.any():
         return None
     dup = np.zeros(len(frac), dtype=bool)
@@ -1324,7 +1330,7 @@ def _crystal_from_block(block, column, source: str, max_atoms: int = limits.MAX_
                              "is far outside the cell")
     frac = np.array(vals).reshape(nrow, 3)
 
-    occ = _occupancies(occ_raw, nrow, labels)
+    occ, whole = _occupancies(occ_raw, nrow, labels)
     numbers, charges = _elements(block, types, labels)
 
     a, b, c, alpha, beta, gamma = _cif_cell(block)
@@ -1357,7 +1363,7 @@ def _crystal_from_block(block, column, source: str, max_atoms: int = limits.MAX_
     dup = None
     if len(set(numbers.tolist())) < nrow:
         if site is not None and nrow <= _FEW:
-            dup = _duplicate_sites(frac, images, cell, numbers, occ)
+            dup = _duplicate_sites(frac, images, cell, numbers, occ, whole)
             dup = None if dup is None else dup[site]
         else:
             dup = False
@@ -1371,7 +1377,7 @@ def _crystal_from_block(block, column, source: str, max_atoms: int = limits.MAX_
         keep = ~dup
         meta["merged_duplicates"] = int(dup.sum())
         pos, numbers, occ, labels, charges = pos[keep], numbers[keep], occ[keep], labels[keep], charges[keep]
-    _check_density(vol, occ)
+    _check_density(vol, occ, whole)
     if setting:
         meta["setting"] = setting
     if completed:
@@ -1380,9 +1386,11 @@ def _crystal_from_block(block, column, source: str, max_atoms: int = limits.MAX_
                    charges=charges, name=block.name, source=source, meta=meta)
 
 
-def _occupancies(occ_raw: list[str] | None, nrow: int, labels: list[str]) -> np.ndarray:
+def _occupancies(occ_raw: list[str] | None, nrow: int, labels: list[str]) -> tuple[np.ndarray, bool]:
+    """The sites' occupancies, and whether they are known to be 1 each (one
+    value for all sites, or none given)."""
     if occ_raw is None:
-        return np.ones(nrow)
+        return np.ones(nrow), True
     first = occ_raw[0]
     if occ_raw.count(first) == nrow:  # one value for all sites, usually 1
         v = _num(first)
@@ -1390,12 +1398,13 @@ def _occupancies(occ_raw: list[str] | None, nrow: int, labels: list[str]) -> np.
             v = 1.0
         if not MIN_OCCUPANCY <= v <= 1.0 + OCC_TOL:
             _check_occupancy(np.array([v]), labels[:1])
-        return filled(nrow, min(v, 1.0))
+        v = min(v, 1.0)
+        return filled(nrow, v), v == 1.0
     occ = _floats(occ_raw)
     occ[np.isnan(occ)] = 1.0  # '?' or '.': not given
     if not (occ.min() >= MIN_OCCUPANCY and occ.max() <= 1.0 + OCC_TOL):
         _check_occupancy(occ, labels)
-    return np.minimum(occ, 1.0, out=occ)
+    return np.minimum(occ, 1.0, out=occ), False
 
 
 @lru_cache(maxsize=4096)
