@@ -12,7 +12,7 @@ from __future__ import annotations
 import math
 import time
 from dataclasses import dataclass, field
-from functools import reduce
+from functools import lru_cache, reduce
 from operator import attrgetter
 from pathlib import Path
 from typing import Any, Iterable, Iterator
@@ -117,18 +117,24 @@ def _r3(x: float | None) -> float | None:
     return round(x, 3) + 0.0 if math.isfinite(x) else None
 
 
+@lru_cache(maxsize=1)
+def _electronegativity() -> list[float]:
+    """elements.pauling() as a list: Python floats, quicker to index and compare."""
+    return elements.pauling().tolist()
+
+
 def formula_of(crystal: Crystal) -> tuple[str, float]:
     """Reduced formula (electropositive elements first) and formula units per cell."""
     syms = elements.symbols()
-    en = elements.pauling()
+    en = _electronegativity()
     occ, numbers = crystal.occupancy, crystal.numbers
-    if (occ == 1.0).all():
+    if not np.count_nonzero(occ != 1.0):
         # Full occupancy: whole atom counts, divided by their common divisor.
         zs = numbers.tolist()
         counts = {z: zs.count(z) for z in set(zs)}
-        g = reduce(math.gcd, counts.values())
+        g = math.gcd(*counts.values())
         order = sorted(counts, key=lambda z: (en[z], z))
-        return "".join(syms[z] if counts[z] == g else f"{syms[z]}{counts[z] // g}" for z in order), float(g)
+        return "".join([syms[z] if counts[z] == g else f"{syms[z]}{counts[z] // g}" for z in order]), float(g)
     amounts = {int(z): float(np.sum(occ[numbers == z])) for z in np.unique(numbers)}
     ints = [round(a) for a in amounts.values()]
     if all(abs(a - round(a)) < 1e-3 for a in amounts.values()) and min(ints) > 0:
