@@ -293,6 +293,22 @@ def _fragile_sites(crystal, contacts, sites, c: Count | None, options: Options) 
     return [crystal.label(int(rep[s])) for s in sorted(found)]
 
 
+def _r3_ratios(x: np.ndarray) -> list[float | None]:
+    """_r3 of each of per_atom's ratios (positive and below 2, or NaN for
+    none): round(x, 3), or None.  round(x, 3) is the float nearest to n / 1000
+    for the whole number n nearest to x * 1000 (ties to even).  numpy gives
+    the same float wherever the float product x * 1000 is within 0.49 of a
+    whole number: it is off the exact product by less than 1e-12, so that
+    whole number is n.  round() itself takes the rest."""
+    y = x * 1000.0
+    n = np.rint(y)
+    out = [v if v == v else None for v in (n / 1000.0).tolist()]
+    (doubt,) = (np.abs(y - n) > 0.49).nonzero()
+    for k in doubt.tolist():
+        out[k] = round(float(x[k]), 3)
+    return out
+
+
 def _site_groups(crystal, sites) -> tuple:
     """Atoms grouped by (site, element), numbered in order of their first
     atom: ((site, element) per atom, group number per atom, first atom of
@@ -313,15 +329,16 @@ def _site_rows(crystal, sites, c: Count | None, groups: tuple, values: tuple) ->
 
     keys, group, first, counts = groups
     coord, nearest, last, first_out, fragile = values
-    crowded = (counts >= 8).nonzero()[0].tolist()
+    # (groups of 8 or more: none among fewer atoms)
+    crowded = (counts >= 8).nonzero()[0].tolist() if len(keys) >= 8 else []
     if np.count_nonzero(crystal.occupancy != 1.0):
         occ = group_mean(crystal.occupancy, group, counts, crowded).tolist()
     else:
         occ = [1.0] * len(first)
     coordination = r3_all(coord)
-    near = r3_all(nearest)
-    lastb = r3_all(last)
-    firstu = r3_all(first_out)
+    ng = len(first)
+    ratios = _r3_ratios(np.concatenate((nearest, last, first_out)))
+    near, lastb, firstu = ratios[:ng], ratios[ng:2 * ng], ratios[2 * ng:]
     frag = fragile.tolist()
     mult = None if sites.multiplicity is None else sites.multiplicity.tolist()
     if c is not None:
