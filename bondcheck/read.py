@@ -1088,7 +1088,7 @@ def _expand(frac: np.ndarray, cell: np.ndarray, group: _Group,
     return _wrap(pos[site, image]), site, pos
 
 
-_MAX_KEPT = 256  # stabilisers remembered per group (a group has a few dozen site symmetries)
+_MAX_KEPT = 64  # stabilisers remembered per group (the few a corpus meets; memory stays small)
 
 
 def _kept_images(group: _Group, stab: np.ndarray) -> np.ndarray:
