@@ -283,12 +283,16 @@ def _fragile_sites(crystal, contacts, sites, c: Count | None, options: Options) 
     (picked,) = contacts.fragile.nonzero()
     if not picked.size:
         return []
-    i, j = contacts.i[picked], contacts.j[picked]
-    keep = ~contacts.ionic_pair[picked] & (c.role[i] == c.role[j])
-    if not keep.any():
+    # (a few contacts: walked as plain lists)
+    role, site = c.role.tolist(), sites.site.tolist()
+    found = set()
+    for a, b, ionic in zip(contacts.i[picked].tolist(), contacts.j[picked].tolist(),
+                           contacts.ionic_pair[picked].tolist()):
+        if not ionic and role[a] == role[b]:
+            found.add(site[a])
+            found.add(site[b])
+    if not found:
         return []
-    found = set(sites.site[i[keep]].tolist())
-    found.update(sites.site[j[keep]].tolist())
     rep = sites.representative
     return [crystal.label(int(rep[s])) for s in sorted(found)]
 
