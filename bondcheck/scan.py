@@ -292,9 +292,10 @@ class _Worker:
 
 
 # Entries a worker process checks before it is replaced by a fresh one: what
-# a long-lived process accumulates (ctypes array types that vesin's wrapper
-# makes for every new number of pairs, about 4 kB each and never freed;
-# allocator fragmentation) stays bounded however long the scan.
+# a long-lived process accumulates (allocator fragmentation; with a vesin
+# other than 0.6, searched through its Python wrapper, the ctypes array types
+# that wrapper makes for every new number of pairs, about 4 kB each and never
+# freed) stays bounded however long the scan.
 RENEW_AFTER = 20000
 
 
