@@ -25,20 +25,27 @@ CORPUS = Path(__file__).resolve().parents[1] / ".." / "shared" / "corpus"
 STAGES = ("read", "bonds", "sites", "count", "per_atom", "diagnose", "rows")
 
 
-def run(files, opts, spent) -> None:
-    from bondcheck import api
+def read_chunk(files) -> list:
+    """The structures of the files that can be read."""
     from bondcheck.read import read
     from bondcheck.record import StructureError
+
+    cs = []
+    for f in files:
+        try:
+            cs.extend(read(f))
+        except StructureError:
+            pass
+    return cs
+
+
+def run(files, opts, spent) -> None:
+    from bondcheck import api
 
     clk = time.process_time
     for s in range(0, len(files), 32):
         t = clk()
-        cs = []
-        for f in files[s:s + 32]:
-            try:
-                cs.extend(read(f))
-            except StructureError:
-                pass
+        cs = read_chunk(files[s:s + 32])
         spent["read"] += clk() - t
         t = clk()
         con = [api._bonds_stage(c, opts) for c in cs]
@@ -67,18 +74,10 @@ def run(files, opts, spent) -> None:
 
 def whole(files, opts) -> float:
     from bondcheck.api import check_crystals
-    from bondcheck.read import read
-    from bondcheck.record import StructureError
 
     t0 = time.process_time()
     for s in range(0, len(files), 32):
-        cs = []
-        for f in files[s:s + 32]:
-            try:
-                cs.extend(read(f))
-            except StructureError:
-                pass
-        for r in check_crystals(cs, opts):
+        for r in check_crystals(read_chunk(files[s:s + 32]), opts):
             r.to_dict()
     return time.process_time() - t0
 
