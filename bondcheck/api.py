@@ -22,7 +22,7 @@ import numpy as np
 from . import elements
 from .arrays import first_seen_and_index, group_mean
 from .bonds import Criterion, find_contacts, per_atom
-from .count import Count, _element_facts, count, target
+from .count import Count, count, target
 from .diagnose import diagnose
 from .motifs import describe
 from .record import Crystal, StructureError
@@ -352,7 +352,7 @@ def _site_rows(crystal, sites, c: Count | None, groups: tuple, values: tuple) ->
     rows = []
     for u, k in enumerate(first):
         s, z = keys[k]
-        sym, _block, valence, keep_opts = _element_facts(z)
+        sym, _block, valence, keep_opts = elements.facts(z)
         role = bond_count = charge = None
         if c is not None:
             b = bonds[u]

@@ -647,7 +647,7 @@ def _kept_options(z: int, ccb: float, overridden: bool, saturated: bool) -> tupl
     saturated); one whose valence the user set keeps its cation-cation bonds
     alone; other cations keep at least the electrons of their cation-cation
     bonds."""
-    _sym, block, _valence, keep = _element_facts(z)
+    _sym, block, _valence, keep = elements.facts(z)
     opts = {0: 0} if overridden else keep
     if block == "p" or overridden:
         if saturated:
@@ -657,19 +657,6 @@ def _kept_options(z: int, ccb: float, overridden: bool, saturated: bool) -> tupl
     # equal then also hand back the same types, whichever was met first in
     # the caches keyed by them)
     return tuple((float(k), c) for k, c in opts.items() if k >= ccb - 1e-6)
-
-
-_FACTS: dict[int, tuple] = {}
-
-
-def _element_facts(z: int) -> tuple:
-    """(symbol, block, valence, keep options) of an element, cached; the keep
-    options dict is shared and must not be changed."""
-    f = _FACTS.get(z)
-    if f is None:
-        sym = elements.symbols()[z]
-        f = _FACTS[z] = (sym, elements.block(sym), elements.valence(sym), elements.keep_options(sym))
-    return f
 
 
 def _local_totals(w: float, options: tuple) -> dict:

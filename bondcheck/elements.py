@@ -168,3 +168,17 @@ def keep_options(sym: str) -> dict[int, int]:
         if 0 <= ox <= v:
             opts[v - ox] = 0 if ox in common else 1
     return opts or {0: 1}
+
+
+_FACTS: dict[int, tuple] = {}
+
+
+def facts(z: int) -> tuple:
+    """(symbol, block, valence, keep options) of the element of atomic number
+    z, cached for the per-structure path; the keep options dict is shared and
+    must not be changed."""
+    f = _FACTS.get(z)
+    if f is None:
+        sym = symbols()[z]
+        f = _FACTS[z] = (sym, block(sym), valence(sym), keep_options(sym))
+    return f
