@@ -688,13 +688,11 @@ class Scanner:
         return True
 
     def _take(self, source: Iterator[Entry]) -> Callable[[], Entry | None]:
-        from .limits import applied
+        """The next entry to check from `source`, None when there is none
+        (yet).  To be called with the scan's limits applied: the enumeration
+        reads archives and files under them."""
 
         def take() -> Entry | None:
-            with applied(self.limits):  # the enumeration reads archives and files under the limits
-                return _take()
-
-        def _take() -> Entry | None:
             if len(self._ready) >= 2000:  # let the rows out before reading on
                 return None
             for e in source:
@@ -754,6 +752,8 @@ class Scanner:
     def rows(self, tick: float = 0.2) -> Iterator[dict]:
         """Result rows, one per structure (one per entry that could not be
         read), in the order they are finished."""
+        from .limits import applied
+
         self.started = time.time()
         t0 = time.perf_counter()
         run = self.store.start_run(self.okey, self.inputs, self.jobs) if self.store is not None else None
@@ -763,7 +763,8 @@ class Scanner:
         clean = False
         try:
             while ex is None:  # start workers only once there is work for them
-                first = take()
+                with applied(self.limits):
+                    first = take()
                 while self._ready:
                     yield self._ready.popleft()
                 if first is not None:
@@ -776,7 +777,8 @@ class Scanner:
                 elif self._exhausted:
                     break
             while ex is not None:
-                ex.fill(take_held)
+                with applied(self.limits):
+                    ex.fill(take_held)
                 while self._ready:
                     yield self._ready.popleft()
                 if not ex.busy:
@@ -825,8 +827,9 @@ class _JsonlWriter:
 
     def write(self, row: dict) -> None:
         text = getattr(row, "json", None)
-        self.fh.write(text if text is not None else json.dumps(row, separators=(",", ":"), allow_nan=False))
-        self.fh.write("\n")
+        if text is None:
+            text = json.dumps(row, separators=(",", ":"), allow_nan=False)
+        self.fh.write(text + "\n")
 
     def close(self) -> None:
         if self.fh is sys.stdout:
@@ -1066,11 +1069,12 @@ class Tally:
         self._n += 1
         st = row.get("status") or "ok"
         self.status[st] += 1
+        findings = row.get("findings")
         if st == "ok":
             self.verdicts[row.get("verdict") or "none"] += 1
             for c in row.get("causes") or []:
                 self.causes[c] += 1
-            for f in row.get("findings") or []:
+            for f in findings or []:
                 self.findings[f.get("slug")] += 1
         entry = row.get("entry") or row.get("path")
         if entry != self._last_entry:
@@ -1083,6 +1087,8 @@ class Tally:
                 heapq.heappush(self._slow, item)
             elif item > self._slow[0]:
                 heapq.heapreplace(self._slow, item)
+        if st == "ok" and not findings:
+            return  # nothing asks for a look (see worth_a_look)
         score, reason = worth_a_look(row)
         if score > 0:
             resid = row.get("residual")

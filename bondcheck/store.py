@@ -193,22 +193,32 @@ def generic(row: dict, entry: str) -> dict:
     return g
 
 
+# JSON text of a str, as json.dumps writes it
+_json_str = json.encoder.encode_basestring_ascii
+_NO_SUFFIX = '{"path":""'
+
+
 def specific(rows: list[dict], entry: str, digest: str, texts: list[str] | None = None) -> list[Row]:
     """Stored rows made into the rows of one entry: ``entry`` and ``path``
     first, ``hash`` last.  ``texts``: the JSON of each stored row as a worker
     wrote it, ``path`` first, from which the row's own JSON is spliced."""
     out = []
+    entry_json = _json_str(entry)
     for i, g in enumerate(rows):
         suffix = g.get("path") or ""
         path = entry + suffix
         r = Row(entry=entry, path=path)
-        r.update((k, v) for k, v in g.items() if k != "path")
+        r.update(g)  # the keys in g's order after entry and path; path as it was
+        r["path"] = path
         r["hash"] = digest
         r.json = None
         if texts is not None:
             text = texts[i]
-            head = '{"path":' + json.dumps(suffix)
+            if suffix:
+                head, path_json = '{"path":' + _json_str(suffix), _json_str(path)
+            else:
+                head, path_json = _NO_SUFFIX, entry_json
             if text.startswith(head):
-                r.json = f'{{"entry":{json.dumps(entry)},"path":{json.dumps(path)}{text[len(head):-1]},"hash":"{digest}"}}'
+                r.json = f'{{"entry":{entry_json},"path":{path_json}{text[len(head):-1]},"hash":"{digest}"}}'
         out.append(r)
     return out
