@@ -1025,19 +1025,26 @@ def worth_a_look(row: dict) -> tuple[float, str]:
     """(score, reason) of a row; 0 when nothing asks for a look.  Findings
     that point at a wrong structure come first, then error-severity findings,
     entries that could not be checked, and warnings; a mismatch adds a little."""
-    score, reason = 0.0, ""
-    if row.get("status") in ("error", "timeout"):
-        score, reason = FAILED_SCORE, f"{row['status']}: {row.get('error') or ''}"
-    findings = row.get("findings") or []
-    for f in findings:
-        s = PRIORITY_SLUGS.get(f.get("slug"), SEVERITY_SCORE.get(f.get("severity"), 0.0))
+    st = row.get("status")
+    if st in ("error", "timeout"):
+        score, reason = FAILED_SCORE, f"{st}: {row.get('error') or ''}"
+    else:
+        score, reason = 0.0, ""
+    named = first = None
+    for f in row.get("findings") or ():
+        s = PRIORITY_SLUGS.get(f.get("slug"))
+        if s is None:
+            s = SEVERITY_SCORE.get(f.get("severity"), 0.0)
+        elif first is None:
+            first = f
         if s > score:
-            score, reason = s, f"{f.get('slug')}: {f.get('message') or ''}"
+            score, named = s, f
     # Findings come most likely cause first: among the structure-level
     # findings, name the one the diagnosis ranks highest.
-    first = next((f for f in findings if f.get("slug") in PRIORITY_SLUGS), None)
     if first is not None:
-        reason = f"{first.get('slug')}: {first.get('message') or ''}"
+        named = first
+    if named is not None:
+        reason = f"{named.get('slug')}: {named.get('message') or ''}"
     if score and row.get("verdict") == "mismatch":
         score += MISMATCH_BONUS
     return score, reason
@@ -1065,22 +1072,25 @@ class Tally:
         self.interrupted = False
 
     def add(self, row: dict) -> None:
+        get = row.get
         self.rows += 1
         self._n += 1
-        st = row.get("status") or "ok"
+        st = get("status") or "ok"
         self.status[st] += 1
-        findings = row.get("findings")
+        findings = get("findings")
         if st == "ok":
-            self.verdicts[row.get("verdict") or "none"] += 1
-            for c in row.get("causes") or []:
+            self.verdicts[get("verdict") or "none"] += 1
+            for c in get("causes") or ():
                 self.causes[c] += 1
-            for f in findings or []:
-                self.findings[f.get("slug")] += 1
-        entry = row.get("entry") or row.get("path")
+            if findings:
+                counts = self.findings
+                for f in findings:
+                    counts[f.get("slug")] += 1
+        entry = get("entry") or get("path")
         if entry != self._last_entry:
             self._last_entry = entry
             self.entries += 1
-            es = float(row.get("entry_seconds") or 0.0)
+            es = float(get("entry_seconds") or 0.0)
             self.check_seconds += es
             item = (es, self._n, entry)
             if len(self._slow) < self.top:
@@ -1091,10 +1101,10 @@ class Tally:
             return  # nothing asks for a look (see worth_a_look)
         score, reason = worth_a_look(row)
         if score > 0:
-            resid = row.get("residual")
+            resid = get("residual")
             tb = abs(resid) if isinstance(resid, (int, float)) else 0.0
-            path = str(row.get("path") or entry)
-            item = (score, tb, path, (row.get("verdict") or st, reason))
+            path = str(get("path") or entry)
+            item = (score, tb, path, (get("verdict") or st, reason))
             if len(self._look) < self.top:
                 heapq.heappush(self._look, item)
             elif item > self._look[0]:
