@@ -5,14 +5,21 @@ Imported (for its side effect) by the server process that forks the workers of
 import of the pipeline, so that each worker, and each replacement for a worker
 stopped by ``--timeout``, starts ready instead of paying seconds of imports on
 its first entry.  Nothing else imports this module.
+
+Scans group sites by environment unless asked for symmetry, so the check runs
+with ``Options(symmetry=False)``; the spglib path is warmed too when spglib is
+loaded already (the scan has the server import it first for ``--symmetry``
+scans), so that other scans' servers do not import spglib at all.
 """
 from __future__ import annotations
+
+import sys
 
 
 def warm() -> None:
     import numpy as np
 
-    from .api import check_crystal
+    from .api import Options, check_crystal
     from .read import read_cif_bytes
     from .record import Crystal
 
@@ -26,8 +33,12 @@ def warm() -> None:
         frac=np.array([[0.0, 0.0, 0.0], [0.25, 0.25, 0.25]]),
         numbers=np.array([31, 33]), occupancy=np.ones(2), labels=np.array(["", ""]),
         charges=np.full(2, np.nan), name="warm", source="warm"))
+    settings = [Options(symmetry=False)]
+    if "spglib" in sys.modules:
+        settings.append(Options(symmetry=True))
     for c in crystals:
-        check_crystal(c)
+        for options in settings:
+            check_crystal(c, options)
 
 
 try:

@@ -309,17 +309,25 @@ class _Processes:
 
         self.job, self.timeout, self.chunk = job, timeout, max(1, chunk)
         self.limit = 2 * self.chunk
+        # what the workers need loaded: spglib only for a scan that searches
+        # symmetry (bondcheck._warm then warms its path as well)
+        preload = ["bondcheck.scan", "spglib", "bondcheck._warm"] if job[0].symmetry else \
+            ["bondcheck.scan", "bondcheck._warm"]
         main_file = getattr(sys.modules.get("__main__"), "__file__", None)
         if main_file and not os.path.exists(main_file):
             # a program read from standard input cannot be imported again in a
             # fresh interpreter: fork this (warmed) process instead
             import importlib
 
-            importlib.import_module("bondcheck._warm")
+            for name in preload[1:]:
+                try:
+                    importlib.import_module(name)
+                except ImportError:  # as the server would: a worker imports it when it needs it
+                    pass
             self.ctx = mp.get_context("fork")
         else:
             self.ctx = mp.get_context("forkserver")
-            self.ctx.set_forkserver_preload(["bondcheck.scan", "bondcheck._warm"])
+            self.ctx.set_forkserver_preload(preload)
         self.retry: deque[Entry] = deque()
         self.deaths = 0
         self.nworkers = jobs
