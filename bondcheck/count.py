@@ -200,6 +200,149 @@ def count(
     return c
 
 
+def same_count(crystal: Crystal, contacts: Contacts, bonded: np.ndarray, anions: list[str] | None = None) -> bool:
+    """True when count() of the contacts judged as `bonded` (another
+    criterion's bonds over the same contacts) is provably the count of the
+    contacts as given, in everything but the per-bond arrays: the same
+    split, residual, validity and closure. False when that is not shown
+    (the counts may still agree).
+
+    Call an element a fixed cation when it cannot be an anion and is in no
+    candidate anion set (the user's set, when given): it is a cation in
+    every split count() evaluates, as the polyanion split only adds
+    anion-capable elements. Every contact whose bond differs must have a
+    fixed cation x at one end; at the other end y:
+
+    * y a fixed cation too: the contact is never anion-anion nor
+      cation-anion; it could be a cation-cation bond only when neither is
+      electropositive, and then it must fail the bridging test whatever the
+      split (below).
+    * otherwise it is never anion-anion, and a cation-anion bond in the
+      splits where y is an anion: it must be longer than a saturating bond
+      (SATURATED_RATIO), and when x is not electropositive, each
+      cation-cation candidate at x must fail the bridging test whatever the
+      split (x's mean cation-anion length, which that test reads, changes).
+      x cannot be anion-capable, so its having no anion neighbour changes no
+      validity.
+
+    Then no split gains or loses an anion-anion or cation-cation bond: the
+    bond counts, per-atom values, validity, saturated cations and pi
+    capacity of every split are those of the given bonds (the bonds that
+    enter them are the same, in the same order). Nor does the polyanion
+    split change: a pair of elements with a fixed cation neither adds that
+    element (not anion-capable) nor, as it is never an anion, adds its
+    partner or makes it bonded to an anion. The candidates then count and
+    are chosen as before.
+
+    The bridging test fails for a contact of length d at atoms e, f in
+    every split when d > CC_BRIDGE * min(L_e, L_f), L_e the longest of e's
+    bonds (in either set of bonds) to atoms that are not fixed cations,
+    taken only when e has a bond in both to an atom of the first candidate
+    set: e's mean cation-anion length is then at most L_e in every split
+    (a small factor covers the rounding of the mean)."""
+    given = contacts.bonded
+    changed = np.flatnonzero(bonded != given)
+    if not changed.size:
+        return True
+    z = crystal.numbers
+    zs = tuple(sorted(set(z.tolist())))
+    sets = _fixed_cations(zs, tuple(anions) if anions else None)
+    if sets is None:
+        return not anions  # no candidate: nothing to count either way; a set count() refuses
+    fixed, first = sets
+    i, j, d = contacts.i, contacts.j, contacts.d
+    ci, cj = i[changed], j[changed]
+    # The changed contacts, a few: each looked at in turn.
+    check = []  # contacts that must fail the bridging test
+    x_may = []  # cation ends x that may bond to another cation
+    for k, a, b, za, zb, r in zip(changed.tolist(), ci.tolist(), cj.tolist(), z[ci].tolist(), z[cj].tolist(),
+                                  contacts.ratio[changed].tolist()):
+        fa, fb = za in fixed, zb in fixed
+        if fa and fb:
+            if za in _NOT_EP_Z and zb in _NOT_EP_Z:
+                check.append(k)
+        elif fa or fb:
+            if r <= SATURATED_RATIO:
+                return False
+            x, zx = (a, za) if fa else (b, zb)
+            if zx in _NOT_EP_Z:
+                x_may.append(x)
+        else:
+            return False
+    if not check and not x_may:
+        return True
+    union = bonded | given
+    rows = np.flatnonzero(union)
+    ui, uj = i[rows], j[rows]
+    zi, zj = z[ui], z[uj]
+    n = len(z)
+    fixed_z, first_z = _element_masks(fixed, first)
+    if x_may:
+        # Cations that may bond to each other in the first split (in any
+        # other, a subset of them), and the candidates among them at x.
+        may_z = _NOT_EP_BY_Z & ~first_z
+        at_x = np.zeros(n, dtype=bool)
+        at_x[x_may] = True
+        near_x = (at_x[ui] | at_x[uj]) & may_z[zi] & may_z[zj]
+        check += rows[near_x].tolist()
+    # L per end atom of the contacts to check (inf when not anchored): each
+    # bond of the union near them, from either end.
+    check = np.array(check, dtype=np.intp)
+    pi, pj = i[check], j[check]
+    at = np.zeros(n, dtype=bool)
+    at[pi] = True
+    at[pj] = True
+    sel = np.flatnonzero(at[ui] | at[uj])
+    end = np.concatenate((ui[sel], uj[sel]))
+    other = np.concatenate((zj[sel], zi[sel]))
+    rs = rows[sel]
+    dd = np.concatenate((d[rs], d[rs]))
+    kept = np.concatenate((given[rs], given[rs])) & np.concatenate((bonded[rs], bonded[rs]))
+    use = at[end] & ~fixed_z[other]
+    end, other, dd, kept = end[use], other[use], dd[use], kept[use]
+    longest = np.zeros(n)
+    np.maximum.at(longest, end, dd)
+    anchored = np.zeros(n, dtype=bool)
+    anchored[end[kept & first_z[other]]] = True
+    limit = np.where(anchored, longest, np.inf)
+    bound = CC_BRIDGE * np.minimum(limit[pi], limit[pj]) * (1 + 1e-9)
+    return bool(np.count_nonzero(d[check] > bound) == check.size)
+
+
+@lru_cache(maxsize=1024)
+def _element_masks(fixed: frozenset, first: frozenset) -> tuple[np.ndarray, np.ndarray]:
+    """The two sets of `_fixed_cations` as masks by atomic number."""
+    out = []
+    for members in (fixed, first):
+        m = np.zeros(_CAPABLE_BY_Z.size, dtype=bool)
+        m[list(members)] = True
+        m.setflags(write=False)
+        out.append(m)
+    return out[0], out[1]
+
+
+@lru_cache(maxsize=1024)
+def _fixed_cations(zs: tuple[int, ...], anions: tuple[str, ...] | None):
+    """(fixed cations, first anion set) as sets of atomic numbers, for
+    `same_count`: the elements present that cannot be anions and are in no
+    candidate set, or not in the user's set; None when there is no
+    candidate or the user's set names an element not present."""
+    nums = elements.numbers()
+    if anions:
+        if not all(a in nums for a in anions):
+            return None
+        every = first = frozenset(nums[a] for a in anions)
+        if not every <= set(zs):
+            return None
+    else:
+        cands = _candidates(zs)
+        if not cands:
+            return None
+        first = frozenset(nums[a] for a in cands[0][0])
+        every = frozenset(nums[a] for an, _why in cands for a in an)
+    return frozenset(k for k in zs if k not in _CAPABLE_Z and k not in every), first
+
+
 # target() by atomic number: electrons that complete the shell.
 _TARGET_BY_Z = np.array([float(target(sym)) for sym in elements.symbols()])
 _TARGET_BY_Z.setflags(write=False)
