@@ -21,7 +21,7 @@ Measurements
   jobs=1    one worker process; jobs=2: two worker processes
   jobs=1 warm, jobs=2 warm   the same after a scan of two files in the same
             process: the worker server (which imports and warms up the
-            pipeline, about 0.3 s, once per process) is already running,
+            pipeline, about 0.25 s, once per process) is already running,
             as in a long scan where that start is spread over many entries
   store     jobs=2 writing a fresh results store; rerun: the same again, all
             answered from the store
