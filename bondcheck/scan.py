@@ -1033,24 +1033,18 @@ def worth_a_look(row: dict) -> tuple[float, str]:
     """(score, reason) of a row; 0 when nothing asks for a look.  Findings
     that point at a wrong structure come first, then error-severity findings,
     entries that could not be checked, and warnings; a mismatch adds a little."""
-    st = row.get("status")
-    if st in ("error", "timeout"):
-        score, reason = FAILED_SCORE, f"{st}: {row.get('error') or ''}"
-    else:
-        score, reason = 0.0, ""
-    named = first = None
-    for f in row.get("findings") or ():
-        s = PRIORITY_SLUGS.get(f.get("slug"))
-        if s is None:
-            s = SEVERITY_SCORE.get(f.get("severity"), 0.0)
-        elif first is None:
-            first = f
+    score, reason = 0.0, ""
+    if row.get("status") in ("error", "timeout"):
+        score, reason = FAILED_SCORE, f"{row['status']}: {row.get('error') or ''}"
+    findings = row.get("findings") or ()
+    named = None  # the finding with the highest score, if it beats the status
+    for f in findings:
+        s = PRIORITY_SLUGS.get(f.get("slug"), SEVERITY_SCORE.get(f.get("severity"), 0.0))
         if s > score:
             score, named = s, f
     # Findings come most likely cause first: among the structure-level
     # findings, name the one the diagnosis ranks highest.
-    if first is not None:
-        named = first
+    named = next((f for f in findings if f.get("slug") in PRIORITY_SLUGS), named)
     if named is not None:
         reason = f"{named.get('slug')}: {named.get('message') or ''}"
     if score and row.get("verdict") == "mismatch":
