@@ -388,23 +388,18 @@ def rescaled(crystal: Crystal, contacts: Contacts, criterion: Criterion) -> Cont
     return replace(c, bonded=bonded)
 
 
-def per_atom(contacts: Contacts, n_atoms: int, occupancy: np.ndarray, group=None, counts=None):
-    """Per-atom coordination (occupancy weighted), nearest ratio, last bonded
-    ratio, first unbonded ratio (NaN where an atom has no such contact) and
-    fragility.
-
-    Given `group` (an int array numbering each atom's group 0..g-1) and
-    `counts` (atoms per group), the same per group of atoms, as the per-atom
-    values give them: the mean coordination (arrays.group_mean), the smallest
-    nearest and first unbonded ratio, the largest last bonded ratio, and
-    whether any atom of the group is fragile.  The group values come from
-    the contacts directly, without per-atom values on the way, except the
-    coordination when some occupancy is not 1: that is summed per atom
-    first, as the mean of the per-atom values adds it."""
+def per_atom(contacts: Contacts, n_atoms: int, occupancy: np.ndarray, group: np.ndarray, counts: np.ndarray):
+    """Per group of atoms (`group`: an int array numbering each atom's group
+    0..g-1; `counts`: atoms per group), the values the per-atom coordination
+    (occupancy weighted), nearest ratio, last bonded ratio, first unbonded
+    ratio (NaN where an atom has no such contact) and fragility give the
+    group: the mean coordination (arrays.group_mean), the smallest nearest
+    and first unbonded ratio, the largest last bonded ratio, and whether any
+    atom of the group is fragile.  The group values come from the contacts
+    directly, without per-atom values on the way, except the coordination
+    when some occupancy is not 1: that is summed per atom first, as the mean
+    of the per-atom values adds it."""
     c = contacts
-    if group is None:  # each atom a group of its own
-        group = np.arange(n_atoms)
-        counts = np.ones(n_atoms, dtype=np.int64)
     ng = counts.size
     # Both ends of every contact: atom, its group, ratio, bonded.
     ends = np.concatenate((c.i, c.j))
