@@ -832,13 +832,13 @@ UNITS = 10000
 
 
 @lru_cache(maxsize=4096)
-def _local(w: float, options: tuple, kind: type) -> tuple:
+def _local(w: float, options: tuple) -> tuple:
     """One group's totals as the searches use them, cached: (choices,
     smallest, largest, whole). choices: ((total in units of 1/UNITS, (cost,
     electrons per atom, mixed)), ...) from `_local_totals`; smallest and
-    largest total in electrons; whole: every total a whole number. `kind` is
-    the type of the kept electrons (int or float), so that option sets that
-    compare equal but hand back different types are kept apart."""
+    largest total in electrons; whole: every total a whole number. Kept
+    electrons are floats in every option set (`_kept_options`), so option
+    sets that compare equal hand back the same types."""
     totals = _local_totals(w, options)
     choices = tuple((round(t * UNITS), v) for t, v in totals.items())
     return choices, min(totals), max(totals), all(t == int(t) for t in totals)
@@ -894,7 +894,7 @@ def _search(options, lo: float = -math.inf, hi: float = math.inf):
             if _few_totals(locs):
                 return {}, 0.0
             return _enumerate(options)
-        locs.append((g, _local(w, opts, type(opts[0][0]))))
+        locs.append((g, _local(w, opts)))
     windowed = (lo > -math.inf or hi < math.inf) and _few_totals(locs)
     if not windowed:
         return _enumerate(options)
@@ -962,7 +962,7 @@ def _enumerate(options):
     for g, w, opts in options:
         if not opts:
             return {}, 0.0
-        states = _combine(states, _local(w, opts, type(opts[0][0]))[0], g)
+        states = _combine(states, _local(w, opts)[0], g)
         if len(states) > MAX_STATES:
             break
     return {u / UNITS: v for u, v in states.items()}, max(states, default=0) / UNITS
