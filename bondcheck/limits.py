@@ -77,16 +77,9 @@ _DEFAULT = Limits()
 _override: contextvars.ContextVar[Limits | None] = contextvars.ContextVar("bondcheck_limits", default=None)
 
 
-def _any_set() -> bool:
-    """Whether any of the variables is set (asked on every read, so the usual
-    case, none set, returns after four lookups)."""
-    env = os.environ
-    return any(name in env for name, _ in _ENV.values())
-
-
 def _from_env() -> Limits:
     env = os.environ
-    if not _any_set():
+    if not any(name in env for name, _ in _ENV.values()):
         return _DEFAULT
     changes = {}
     for field in fields(Limits):
@@ -181,6 +174,32 @@ def read_capped(fh, limit: int, what: str = "file", size: int | None = None) -> 
         if total > limit:
             raise size_error(total, limit, what, at_least=True)
     return b"".join(parts)
+
+
+class FdReads:
+    """An open file descriptor read as a buffered binary file reads it, for
+    :func:`read_capped` (os.read costs less than a Python file object):
+    ``read(n)`` returns n bytes unless the file ends first (one os.read may
+    return fewer, from a pipe say)."""
+
+    __slots__ = ("fd",)
+
+    def __init__(self, fd: int):
+        self.fd = fd
+
+    def read(self, n: int) -> bytes:
+        data = os.read(self.fd, n)
+        if 0 < len(data) < n:
+            parts = [data]
+            got = len(data)
+            while got < n:
+                more = os.read(self.fd, n - got)
+                if not more:
+                    break
+                parts.append(more)
+                got += len(more)
+            data = b"".join(parts)
+        return data
 
 
 def gunzip_capped(data: bytes, limit: int, what: str = "file") -> bytes:

@@ -197,8 +197,8 @@ def _read_bytes(path, max_bytes: int) -> bytes:
     """The file's bytes (gunzipped for ``*.gz``), read in chunks up to the limit.
 
     The file is read through its descriptor (os.open, os.read), which costs
-    less than a Python file object; :class:`_Reads` gives it the reads of a
-    buffered binary file.
+    less than a Python file object; :class:`limits.FdReads` gives it the
+    reads of a buffered binary file.
     """
     try:
         fd = os.open(path, os.O_RDONLY)
@@ -208,7 +208,7 @@ def _read_bytes(path, max_bytes: int) -> bytes:
             if stat.S_ISREG(st.st_mode):
                 size = st.st_size
                 limits.check_size(size, max_bytes)
-            data = limits.read_capped(_Reads(fd), max_bytes, size=size)
+            data = limits.read_capped(limits.FdReads(fd), max_bytes, size=size)
         finally:
             os.close(fd)
     except FileNotFoundError:
@@ -220,31 +220,6 @@ def _read_bytes(path, max_bytes: int) -> bytes:
     if str(path).lower().endswith(".gz"):
         data = limits.gunzip_capped(data, max_bytes)
     return data
-
-
-class _Reads:
-    """An open file descriptor read as a buffered binary file reads it:
-    ``read(n)`` returns n bytes unless the file ends first (one os.read may
-    return fewer, from a pipe say)."""
-
-    __slots__ = ("fd",)
-
-    def __init__(self, fd: int):
-        self.fd = fd
-
-    def read(self, n: int) -> bytes:
-        data = os.read(self.fd, n)
-        if 0 < len(data) < n:
-            parts = [data]
-            got = len(data)
-            while got < n:
-                more = os.read(self.fd, n - got)
-                if not more:
-                    break
-                parts.append(more)
-                got += len(more)
-            data = b"".join(parts)
-        return data
 
 
 _CIF_START = re.compile(rb"\A(?:\s*#[^\n]*\n)*\s*data_", re.IGNORECASE)

@@ -26,7 +26,7 @@ import stat
 import sys
 from typing import Iterable, Iterator
 
-from .limits import current, gunzip_capped, read_capped, size_error
+from .limits import FdReads, check_size, current, gunzip_capped, read_capped, size_error
 from .record import StructureError
 
 __all__ = ["Entry", "iter_entries", "count_entries", "load_crystals", "read_list"]
@@ -209,7 +209,6 @@ def _one_path(path: str, load: bool) -> Iterator[Entry]:
         yield Entry(path, name, data=data, path=path)
 
 
-_READ_CHUNK = 1 << 20
 _O_READ = os.O_RDONLY | getattr(os, "O_BINARY", 0)
 
 
@@ -217,24 +216,12 @@ def _read_file(path: str, cap: int) -> bytes:
     """The bytes of a plain file: turned away by its size before reading if
     over ``cap`` bytes, and never read past ``cap`` (StructureError) should it
     grow meanwhile.  Read through the bare descriptor: one read of the size
-    the file has, one more that finds its end (what a buffered file object
-    does, at half the cost for a file of a few kB)."""
+    the file has, one more that finds its end."""
     fd = os.open(path, _O_READ)
     try:
         size = os.fstat(fd).st_size
-        if size > cap:
-            raise size_error(size, cap)
-        parts, total = [], 0
-        want = size + 1
-        while True:
-            chunk = os.read(fd, min(want, cap + 1 - total))
-            if not chunk:
-                return b"".join(parts)
-            parts.append(chunk)
-            total += len(chunk)
-            if total > cap:
-                raise size_error(total, cap, at_least=True)
-            want = _READ_CHUNK
+        check_size(size, cap)
+        return read_capped(FdReads(fd), cap, size=size)
     finally:
         os.close(fd)
 
