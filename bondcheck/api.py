@@ -196,9 +196,11 @@ def check_crystals(crystals: list[Crystal], options: Options | None = None) -> l
             except StructureError as exc:
                 results[k].status, results[k].error = "error", str(exc)
             except Exception as exc:
-                c = crystals[k]
-                results[k] = Result(path=c.source, name=c.name, status="error",
-                                    error=f"unexpected {type(exc).__name__}: {exc}")
+                # A fresh result (no fields a stage half filled in), with the
+                # path, name and time of the one it replaces.
+                old = results[k]
+                results[k] = Result(path=old.path, name=old.name, status="error",
+                                    error=f"unexpected {type(exc).__name__}: {exc}", seconds=old.seconds)
             results[k].seconds += clock() - t
         live = kept
 
