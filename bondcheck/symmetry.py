@@ -106,8 +106,6 @@ def find_sites(crystal: Crystal, symprec: float = SYMPREC) -> Sites:
         spglib.error.OLD_ERROR_HANDLING = False
     pos_index, positions, types = _positions(crystal)
     npos = positions.shape[0]
-    if pos_index is None:
-        pos_index = np.arange(npos)
     ds = None
     try:
         ds = spglib.get_symmetry_dataset((crystal.cell, positions, types), symprec=symprec)
@@ -129,12 +127,13 @@ def find_sites(crystal: Crystal, symprec: float = SYMPREC) -> Sites:
     site_of_pos = site_of_pos.reshape(-1)
     count = np.bincount(site_of_pos, minlength=reps.size)
     mult = np.maximum(1, np.rint(count * ratio)).astype(np.int64)
-    site = site_of_pos[pos_index]
     # Representative atom: the first entry at the representative position.
-    first_entry = np.full(npos, -1, dtype=np.int64)
-    for k in range(crystal.natoms - 1, -1, -1):
-        first_entry[pos_index[k]] = k
-    representative = first_entry[reps]
+    reps = reps.astype(np.int64, copy=False)
+    if pos_index is None:  # each entry a position
+        site, representative = site_of_pos, reps
+    else:
+        site = site_of_pos[pos_index]
+        representative = np.array(first_index(pos_index.tolist()), dtype=np.int64)[reps]
     return Sites(
         site=site,
         representative=representative,
