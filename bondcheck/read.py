@@ -1165,8 +1165,7 @@ def _duplicates(pos: np.ndarray, cell: np.ndarray, widths: list[float], numbers:
             near = np.sort(q[14:], axis=None)
             if not (near.take(np.minimum(np.searchsorted(near, sk), near.size - 1)) == sk).any():
                 return None
-        order = np.argsort(key, kind="stable")
-        sk = key[order]
+        order = np.argsort(key, kind="stable")  # (sk is key[order])
         lo = np.searchsorted(sk, q, "left")
         cnt = (np.searchsorted(sk, q, "right") - lo).ravel()
         # candidate pairs: each atom with the atoms of its neighbouring bins
