@@ -31,6 +31,7 @@ from functools import lru_cache
 import numpy as np
 
 from . import elements
+from .arrays import group_mean
 from .bonds import Contacts
 from .record import Crystal
 from .symmetry import Sites
@@ -756,22 +757,19 @@ class _Context:
         go, per, cc_any = self.static.group_of, split.per, split.cc_any
         ng = len(self.static.groups)
         ccb_all = None
-        if cc_any and (self.static.full or not np.count_nonzero(per != np.rint(per))):
-            # Whole bond counts (always so with whole atoms): any order of
-            # summation gives np.mean's value.
-            ccb_all = (np.bincount(go, weights=per, minlength=ng) / self.static.group_size).tolist()
+        if cc_any:
+            # np.mean of each group's bonds per atom; with whole atoms the bond
+            # counts are whole and no group needs np.mean itself.
+            size = self.static.group_size
+            crowded = [] if self.static.full else np.flatnonzero(size >= 8).tolist()
+            ccb_all = group_mean(per, go, size, crowded).tolist()
         all_saturated = None
         anion_z, weight, override = split.anion_z, self.static.group_weight, self.valence_override
         for g, (zz, sym, block) in enumerate(self.static.group_elements):
             if zz in anion_z:
                 continue
             # cation-cation bonds per atom (none without a cation-cation bond)
-            if not cc_any:
-                ccb = 0.0
-            elif ccb_all is not None:
-                ccb = ccb_all[g]
-            else:
-                ccb = float(np.mean(per[go == g]))
+            ccb = ccb_all[g] if cc_any else 0.0
             overridden = sym in override
             saturated = False
             if overridden or block == "p":
