@@ -176,6 +176,11 @@ def read_capped(fh, limit: int, what: str = "file", size: int | None = None) -> 
     return b"".join(parts)
 
 
+# os.open flags for reading a file's bytes as they are (binary mode where the
+# platform has a text mode, as open(path, "rb"))
+O_READ = os.O_RDONLY | getattr(os, "O_BINARY", 0)
+
+
 class FdReads:
     """An open file descriptor read as a buffered binary file reads it, for
     :func:`read_capped` (os.read costs less than a Python file object):

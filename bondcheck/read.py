@@ -201,7 +201,7 @@ def _read_bytes(path, max_bytes: int) -> bytes:
     reads of a buffered binary file.
     """
     try:
-        fd = os.open(path, os.O_RDONLY)
+        fd = os.open(path, limits.O_READ)
         try:
             st = os.fstat(fd)
             size = None

@@ -26,7 +26,7 @@ import stat
 import sys
 from typing import Iterable, Iterator
 
-from .limits import FdReads, check_size, current, gunzip_capped, read_capped, size_error
+from .limits import O_READ, FdReads, check_size, current, gunzip_capped, read_capped, size_error
 from .record import StructureError
 
 __all__ = ["Entry", "iter_entries", "count_entries", "load_crystals", "read_list"]
@@ -209,15 +209,12 @@ def _one_path(path: str, load: bool) -> Iterator[Entry]:
         yield Entry(path, name, data=data, path=path)
 
 
-_O_READ = os.O_RDONLY | getattr(os, "O_BINARY", 0)
-
-
 def _read_file(path: str, cap: int) -> bytes:
     """The bytes of a plain file: turned away by its size before reading if
     over ``cap`` bytes, and never read past ``cap`` (StructureError) should it
     grow meanwhile.  Read through the bare descriptor: one read of the size
     the file has, one more that finds its end."""
-    fd = os.open(path, _O_READ)
+    fd = os.open(path, O_READ)
     try:
         size = os.fstat(fd).st_size
         check_size(size, cap)
