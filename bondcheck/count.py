@@ -31,7 +31,7 @@ from functools import lru_cache
 import numpy as np
 
 from . import elements
-from .arrays import group_mean
+from .arrays import filled, group_mean
 from .bonds import Contacts
 from .record import Crystal
 from .symmetry import Sites
@@ -715,7 +715,7 @@ class _Context:
         if np.count_nonzero(out):
             ends = np.concatenate([i, j])
             dd = np.concatenate([self.bd[short], self.bd[short]])
-            lo = np.full(n, np.inf)
+            lo = filled(n, np.inf)
             hi = np.zeros(n)
             np.minimum.at(lo, ends, dd)
             np.maximum.at(hi, ends, dd)
