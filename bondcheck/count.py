@@ -112,15 +112,11 @@ class _Split:
     cc_any: bool  # some cation-cation bond counts
 
 
-def candidate_partitions(crystal: Crystal) -> list[tuple[list[str], str]]:
-    """Anion sets to try, in order: the most electronegative anion-capable
-    element, then the next ones added in order of electronegativity."""
-    zs = tuple(sorted(set(crystal.numbers.tolist())))
-    return [(list(an), why) for an, why in _candidates(zs)]
-
-
 @lru_cache(maxsize=4096)
 def _candidates(zs: tuple[int, ...]) -> tuple[tuple[tuple[str, ...], str], ...]:
+    """Anion sets to try for the elements zs (sorted atomic numbers), in
+    order: the most electronegative anion-capable element, then the next
+    ones added in order of electronegativity; each with why."""
     syms = elements.symbols()
     return tuple((tuple(an), why) for an, why in _candidate_list([syms[z] for z in zs]))
 
@@ -168,7 +164,7 @@ def count(
 
             raise StructureError(f"--anions names {', '.join(missing)}, not present in {crystal.name or 'the structure'}")
         return ctx.evaluate(list(anions), "set by the user (--anions)")
-    candidates = [(list(an), why) for an, why in ctx.static.candidates]  # as candidate_partitions(crystal)
+    candidates = [(list(an), why) for an, why in ctx.static.candidates]
     if not candidates:
         return None
     tried = []
