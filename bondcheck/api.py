@@ -12,7 +12,7 @@ from __future__ import annotations
 import math
 import time
 from dataclasses import dataclass, field
-from functools import lru_cache, reduce
+from functools import reduce
 from operator import attrgetter
 from pathlib import Path
 from typing import Any, Iterable, Iterator
@@ -117,16 +117,10 @@ def _r3(x: float | None) -> float | None:
     return round(x, 3) + 0.0 if math.isfinite(x) else None
 
 
-@lru_cache(maxsize=1)
-def _electronegativity() -> list[float]:
-    """elements.pauling() as a list: Python floats, quicker to index and compare."""
-    return elements.pauling().tolist()
-
-
 def formula_of(crystal: Crystal) -> tuple[str, float]:
     """Reduced formula (electropositive elements first) and formula units per cell."""
     syms = elements.symbols()
-    en = _electronegativity()
+    en = elements.pauling_list()
     occ, numbers = crystal.occupancy, crystal.numbers
     if not np.count_nonzero(occ != 1.0):
         # Full occupancy: whole atom counts, divided by their common divisor.

@@ -62,6 +62,13 @@ def pauling() -> np.ndarray:
     return _by_z("pauling", 4.0)
 
 
+@lru_cache(maxsize=1)
+def pauling_list() -> list[float]:
+    """pauling() as a list of Python floats, quicker to index and compare on
+    the per-structure path."""
+    return pauling().tolist()
+
+
 def valence(sym: str) -> int:
     """Valence electrons given up or shared in the count.
 
