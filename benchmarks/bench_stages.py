@@ -59,7 +59,7 @@ def run(files, opts, spent) -> None:
         t = clk()
         gr = [api._site_groups(c, s) for c, s in zip(cs, si)]
         pa = [api.per_atom(k, c.natoms, c.occupancy, g[1], g[3]) for c, k, g in zip(cs, con, gr)]
-        fl = [api._fragile_sites(c, k, s, n, opts) for c, k, s, n in zip(cs, con, si, cn)]
+        fl = [api._fragile_sites(c, k, s, n) for c, k, s, n in zip(cs, con, si, cn)]
         spent["per_atom"] += clk() - t
         t = clk()
         for c, k, s, n, f in zip(cs, con, si, cn, fl):

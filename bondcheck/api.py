@@ -227,7 +227,7 @@ def _count_stage(crystal: Crystal, contacts, sites, options: Options, res: Resul
     c = count(crystal, contacts, sites, options.anions, options.valence)
     groups = _site_groups(crystal, sites)
     values = per_atom(contacts, crystal.natoms, crystal.occupancy, groups[1], groups[3])
-    fragile_labels = _fragile_sites(crystal, contacts, sites, c, options)
+    fragile_labels = _fragile_sites(crystal, contacts, sites, c)
     verdict, found, components = diagnose(
         crystal, contacts, sites, c, fragile_labels, options.anions, options.valence, options.criterion
     )
@@ -270,7 +270,7 @@ def _validate(crystal: Crystal) -> None:
         raise StructureError("unknown element in the structure")
 
 
-def _fragile_sites(crystal, contacts, sites, c: Count | None, options: Options) -> list[str]:
+def _fragile_sites(crystal, contacts, sites, c: Count | None) -> list[str]:
     """Sites where a contact that enters the count (anion-anion, or between two
     cations that may bond) changes within the criterion wobble."""
     if c is None:
