@@ -134,55 +134,81 @@ def _formula_text(per_z: dict[int, int]) -> str:
     return "".join(f"{syms[z]}{n if n > 1 else ''}" for z, n in sorted(per_z.items()))
 
 
-def _lone_anion(atom: int, z: int) -> Component:
-    """An anion without anion-anion bonds: a component of its own."""
-    return Component([atom], 0, "isolated anion", elements.symbols()[z], 0, 0.0)
-
-
 def anion_components(crystal, contacts, count) -> list[Component]:
     """Connected components of the anion-anion bond graph (fully occupied
-    view: every entry is a node)."""
+    view: every entry is a node), in order of their first atom."""
     # (x.nonzero()[0] is np.flatnonzero(x) for a 1-D array and
     # np.count_nonzero(x) > 0 is x.any(), both without numpy's Python-level
     # wrappers, which cost more than the work on these short arrays.)
-    anions = count.role.nonzero()[0]
+    role = count.role
+    anions = role.nonzero()[0]
     if anions.size == 0:
         return []
     atom_list = anions.tolist()
     z_list = crystal.numbers[anions].tolist()
+    syms = elements.symbols()
     aa = count.aa_bond
     if not np.count_nonzero(aa):  # no anion-anion bond: every anion is a component of its own
-        return [_lone_anion(a, z) for a, z in zip(atom_list, z_list)]
+        return [Component([a], 0, "isolated anion", syms[z], 0, 0.0) for a, z in zip(atom_list, z_list)]
     sel = contacts.bonded.nonzero()[0][aa]  # the anion-anion bonds among all contacts
-    index = {a: k for k, a in enumerate(atom_list)}  # node number of each anion
-    bi = [index[a] for a in contacts.i[sel].tolist()]
-    bj = [index[a] for a in contacts.j[sel].tolist()]
-    comp_list, dims = _components(anions.size, bi, bj, contacts.shift[sel].tolist())
-    ncomp = len(dims)
-    deg = [0] * anions.size
-    edges = [0] * ncomp
-    for i, j in zip(bi, bj):
-        deg[i] += 1
-        deg[j] += 1
-        edges[comp_list[i]] += 1
-    # Members and formula of every component (counts per element in
-    # atomic-number order).
-    members: list[list[int]] = [[] for _ in range(ncomp)]
-    per_z: list[dict[int, int]] = [{} for _ in range(ncomp)]
-    for k, cid in enumerate(comp_list):
-        members[cid].append(k)
-        zc = per_z[cid]
-        zc[z_list[k]] = zc.get(z_list[k], 0) + 1
+    node = role.cumsum() - 1  # node number of each anion (its rank among the anions)
+    # Neighbours of the nodes that have any, as in `_components`: a bond a-b
+    # at shift s gives a the image of b at s, and b the image of a at -s.
+    adj: dict[int, list[tuple[int, int, int, int]]] = {}
+    for a, b, (x, y, z) in zip(node[contacts.i[sel]].tolist(), node[contacts.j[sel]].tolist(),
+                               contacts.shift[sel].tolist()):
+        nb = adj.get(a)
+        if nb is None:
+            nb = adj[a] = []
+        nb.append((b, x, y, z))
+        nb = adj.get(b)
+        if nb is None:
+            nb = adj[b] = []
+        nb.append((a, -x, -y, -z))
+    n = anions.size
+    seen = [False] * n
+    offset: list = [None] * n
     out = []
-    for cid in range(ncomp):
-        m = members[cid]
-        if len(m) == 1 and not edges[cid]:  # the common case: a lone anion
-            out.append(_lone_anion(atom_list[m[0]], z_list[m[0]]))
+    # Components in order of their first node, each walked as `_components`
+    # walks it (the same cycle vectors, hence the same dimensionality). A
+    # node's degree is the length of its neighbour list (a bond to its own
+    # image counts at both ends), and a component's edges half the sum.
+    for start in range(n):
+        if seen[start]:
             continue
-        d = [deg[k] for k in m]
-        text = _formula_text(per_z[cid])
-        comp = Component([atom_list[k] for k in m], dims[cid], "", text, edges[cid], sum(d) / len(d))
-        comp.motif = _name(comp, d)
+        seen[start] = True
+        if start not in adj:  # a lone anion: a component of its own, 0D
+            out.append(Component([atom_list[start]], 0, "isolated anion", syms[z_list[start]], 0, 0.0))
+            continue
+        offset[start] = (0, 0, 0)
+        stack = [start]
+        members = [start]
+        cycles = set()
+        while stack:
+            a = stack.pop()
+            ox, oy, oz = offset[a]
+            for b, x, y, z in adj[a]:
+                o = (ox + x, oy + y, oz + z)
+                if not seen[b]:
+                    seen[b] = True
+                    offset[b] = o
+                    stack.append(b)
+                    members.append(b)
+                else:
+                    bx, by, bz = offset[b]
+                    d = (o[0] - bx, o[1] - by, o[2] - bz)
+                    if d != (0, 0, 0):
+                        cycles.add(d)
+        members.sort()
+        deg = [len(adj[k]) for k in members]
+        per_z: dict[int, int] = {}
+        for k in members:
+            zk = z_list[k]
+            per_z[zk] = per_z.get(zk, 0) + 1
+        edges = sum(deg) // 2
+        comp = Component([atom_list[k] for k in members], _rank(cycles), "", _formula_text(per_z), edges,
+                         sum(deg) / len(deg))
+        comp.motif = _name(comp, deg)
         out.append(comp)
     return out
 
