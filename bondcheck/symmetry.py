@@ -17,7 +17,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from . import elements
-from .arrays import first_index, first_seen
+from .arrays import first_index, first_seen, first_seen_and_index
 from .bonds import SEARCH
 from .record import Crystal
 
@@ -177,11 +177,10 @@ def group_sites(crystal: Crystal, contacts) -> Sites:
     tcode = first_seen(types.tolist())
     nt = max(tcode) + 1
     tcode = np.array(tcode, dtype=np.int64)
-    ak = a * nt + tcode[b]  # atom and partner type in one number
-    # Classes: own type and the number of contacts to each partner type.
-    partners = np.bincount(ak, minlength=npos * nt).reshape(npos, nt)
-    cls = first_seen(_rows(tcode, partners))
-    leader = first_index(cls)
+    ak = a * (nt + 1) + tcode[b]  # atom and partner type in one number
+    # Classes: the number of contacts to each partner type and own type (in
+    # a last column, which no contact counts into).
+    cls, leader = first_seen_and_index(_rows(np.bincount(ak, minlength=npos * (nt + 1)).reshape(npos, nt + 1), tcode))
     # Groups start as the classes, numbered in order of first appearance as
     # the groups are.
     label_list, ngroup, first_pos = cls, len(leader), leader
@@ -193,9 +192,11 @@ def group_sites(crystal: Crystal, contacts) -> Sites:
             # and distance (column: the contact's place among the atom's
             # contacts): within a class the rows line up.
             dd = np.concatenate([d, d])
-            order = _order(ak, dd, npos * nt)
+            order = _order(ak, dd, npos * (nt + 1))
             a_s = a[order]
-            col = np.arange(a.size) - np.searchsorted(a_s, a_s)
+            # (each atom's first place in a_s looked up once per atom, not
+            # once per contact)
+            col = np.arange(a.size) - a_s.searchsorted(np.arange(npos)).take(a_s)
             width = int(np.maximum.reduce(col)) + 1
             table = np.zeros((npos, width))
             table[a_s, col] = dd[order]
@@ -223,29 +224,24 @@ def group_sites(crystal: Crystal, contacts) -> Sites:
                     np.minimum.at(best, r[agree], m[agree])
                     first[f] = best
         if first is not None:  # some atoms differ from their class's first
-            label_list = first_seen(first.tolist())
-            ngroup = max(label_list) + 1
+            label_list, first_pos = first_seen_and_index(first.tolist())
+            ngroup = len(first_pos)
             label = np.array(label_list, dtype=np.int64)
-            first_pos = None  # (the groups' first positions, found when needed)
     # Refine: the numbers of partners in each group must agree too.  There is
     # nothing to split when every position is a group of its own, nor when
     # each type is one group (the counts per group are then the counts per
     # partner type, equal within a class).
     while a.size and nt < ngroup < npos:
-        counts = np.bincount(a * ngroup + label[b], minlength=npos * ngroup).reshape(npos, ngroup)
-        if first_pos is None:
-            first_pos = first_index(label_list)
+        # (own group in a last column, as for the classes)
+        counts = np.bincount(a * (ngroup + 1) + label[b], minlength=npos * (ngroup + 1)).reshape(npos, ngroup + 1)
         # (stable when every row equals that of its group's first position)
         if (counts == counts[np.array(first_pos, dtype=np.int64)[label]]).all():
             break
-        label_list = first_seen(_rows(label, counts))
-        ngroup = max(label_list) + 1
+        label_list, first_pos = first_seen_and_index(_rows(counts, label))
+        ngroup = len(first_pos)
         label = np.array(label_list, dtype=np.int64)
-        first_pos = None
     # Labels count up in order of first appearance: they are the site numbers.
     # The representative is the first entry at the group's first position.
-    if first_pos is None:
-        first_pos = first_index(label_list)
     if pos_index is None:  # each entry a position
         site, representative = label, np.array(first_pos, dtype=np.int64)
     else:
@@ -270,13 +266,23 @@ def _order(key: np.ndarray, dist: np.ndarray, nkeys: int) -> np.ndarray:
     if nkeys <= 32767:
         key = key.astype(np.int16)
         if key.size > 800:
-            o = np.argsort(dist)
-            return o[np.argsort(key[o], kind="stable")]
+            o = dist.argsort()
+            return o[key[o].argsort(kind="stable")]
     return np.lexsort((dist, key))
 
 
-def _rows(first_column: np.ndarray, rest: np.ndarray) -> list[bytes]:
-    """The rows of [first_column | rest] (integers) as bytes, equal exactly
-    when the rows are equal."""
-    m = np.concatenate([first_column[:, None], rest], axis=1).astype(np.int64, copy=False)
-    return m.view(np.dtype((np.void, 8 * m.shape[1]))).ravel().tolist()
+_VOID: dict = {}  # np.dtype((np.void, 8 * k)) by k
+
+
+def _rows(m: np.ndarray, last: np.ndarray) -> list[bytes]:
+    """The rows of ``m`` (a C-contiguous int64 array whose last column
+    counted nothing) as bytes after ``last`` is written into that column:
+    equal exactly when the rows are equal."""
+    k = m.shape[1]
+    m[:, k - 1] = last
+    void = _VOID.get(k)
+    if void is None:
+        void = np.dtype((np.void, 8 * k))
+        if len(_VOID) < 1024:
+            _VOID[k] = void
+    return m.view(void).ravel().tolist()
