@@ -1053,14 +1053,15 @@ def _expand(frac: np.ndarray, cell: np.ndarray, group: _Group,
     d = d @ cell
     d *= d
     stab = d @ _ONES3 < MERGE_TOL ** 2  # (n, m): the operations that keep each site in place
-    special = np.nonzero(stab.sum(1) > 1)[0]
+    # Sites kept in place by more than the identity (the first operation).
+    # (ufuncs and methods: numpy's function wrappers cost more than the work)
+    special = np.logical_or.reduce(stab[:, 1:], axis=1).nonzero()[0]
     if len(special) == 0:  # all sites on general positions
-        return _wrap(pos.reshape(n * m, 3)), np.repeat(np.arange(n), m), pos
+        return _wrap(pos.reshape(n * m, 3)), np.arange(n).repeat(m), pos
     keep = np.ones((n, m), dtype=bool)
     for i in special.tolist():
         keep[i] = _kept_images(group, stab[i])
-    site, image = np.nonzero(keep)
-    return _wrap(pos[site, image]), site, pos
+    return _wrap(pos[keep]), keep.nonzero()[0], pos
 
 
 _MAX_KEPT = 64  # stabilisers remembered per group (the few a corpus meets; memory stays small)
@@ -1200,19 +1201,21 @@ def _duplicate_sites(frac: np.ndarray, images: np.ndarray, cell: np.ndarray, num
     over the sites, or None.  ``whole``: every occupancy is 1 (any two add
     to more than 1)."""
     rows, cols = _pairs(len(frac))
-    sel = numbers[cols] == numbers[rows]
+    # (take and ufunc reductions: fancy indexing and the any() method cost
+    # more than the work on these short arrays)
+    sel = numbers.take(cols) == numbers.take(rows)
     if not whole:
-        sel &= occ[rows] + occ[cols] > 1.0 + OCC_TOL
-    if not sel.any():
+        sel &= occ.take(rows) + occ.take(cols) > 1.0 + OCC_TOL
+    if not np.logical_or.reduce(sel):
         return None
     rows, cols = rows[sel], cols[sel]
-    d = images[rows]  # (p, m, 3)
-    d -= frac[cols][:, None, :]
+    d = images.take(rows, 0)  # (p, m, 3)
+    d -= frac.take(cols, 0)[:, None, :]
     d -= np.rint(d)
     d = d @ cell
     d *= d
-    near = (d @ _ONES3 < MERGE_TOL ** 2).any(1)
-    if not near.any():
+    near = np.logical_or.reduce(d @ _ONES3 < MERGE_TOL ** 2, axis=1)
+    if not np.logical_or.reduce(near):
         return None
     dup = np.zeros(len(frac), dtype=bool)
     dup[cols[near]] = True
