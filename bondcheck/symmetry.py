@@ -177,7 +177,7 @@ def group_sites(crystal: Crystal, contacts) -> Sites:
     tcode = first_seen(types.tolist())
     nt = max(tcode) + 1
     tcode = np.array(tcode, dtype=np.int64)
-    ak = a * (nt + 1) + tcode[b]  # atom and partner type in one number
+    ak = a * (nt + 1) + tcode.take(b)  # atom and partner type in one number
     # Classes: the number of contacts to each partner type and own type (in
     # a last column, which no contact counts into).
     cls, leader = first_seen_and_index(_rows(np.bincount(ak, minlength=npos * (nt + 1)).reshape(npos, nt + 1), tcode))
@@ -192,7 +192,7 @@ def group_sites(crystal: Crystal, contacts) -> Sites:
             # and distance (column: the contact's place among the atom's
             # contacts): within a class the rows line up.
             dd = np.concatenate([d, d])
-            order = _order(ak, dd, npos * (nt + 1))
+            order = _order(ak, d, dd, npos * (nt + 1))
             a_s = a[order]
             # (each atom's first place in a_s looked up once per atom, not
             # once per contact)
@@ -204,11 +204,14 @@ def group_sites(crystal: Crystal, contacts) -> Sites:
             # class's first atom, or for the atoms whose distances differ from that
             # atom's, the first of the earlier atoms of the class that agrees (or
             # itself), found in blocks of up to 2e6 distance comparisons.
-            lead = np.array(leader, dtype=np.int64)[cls]
-            far = np.abs(table - table[lead]) > ENV_TOL
-            if far.any():
+            lead = np.array(leader, dtype=np.int64).take(cls)
+            dev = np.subtract(table, table.take(lead, 0))
+            np.abs(dev, out=dev)  # (how far each distance is from its class leader's)
+            # (ufunc reductions: the any() and max() methods' wrappers cost
+            # more than the work on these small tables)
+            if np.maximum.reduce(dev, axis=None) > ENV_TOL:
                 first = lead
-                apart = np.flatnonzero(far.any(axis=1))
+                apart = (np.maximum.reduce(dev, axis=1) > ENV_TOL).nonzero()[0]
                 step = max(1, 2_000_000 // (npos * width))
                 for s in range(0, apart.size, step):
                     f = apart[s : s + step]
@@ -219,7 +222,10 @@ def group_sites(crystal: Crystal, contacts) -> Sites:
                         t0 = table[:, 0]
                         near = (np.abs(t0[m] - t0[f[r]]) <= ENV_TOL).nonzero()[0]
                         r, m = r[near], m[near]
-                    agree = np.abs(table[m] - table[f[r]]).max(axis=1) <= ENV_TOL
+                    diff = table.take(m, 0)
+                    diff -= table.take(f.take(r), 0)
+                    np.abs(diff, out=diff)
+                    agree = np.maximum.reduce(diff, axis=1) <= ENV_TOL
                     best = f.copy()
                     np.minimum.at(best, r[agree], m[agree])
                     first[f] = best
@@ -233,9 +239,9 @@ def group_sites(crystal: Crystal, contacts) -> Sites:
     # partner type, equal within a class).
     while a.size and nt < ngroup < npos:
         # (own group in a last column, as for the classes)
-        counts = np.bincount(a * (ngroup + 1) + label[b], minlength=npos * (ngroup + 1)).reshape(npos, ngroup + 1)
+        counts = np.bincount(a * (ngroup + 1) + label.take(b), minlength=npos * (ngroup + 1)).reshape(npos, ngroup + 1)
         # (stable when every row equals that of its group's first position)
-        if (counts == counts[np.array(first_pos, dtype=np.int64)[label]]).all():
+        if np.logical_and.reduce(counts == counts.take(np.array(first_pos, dtype=np.int64).take(label), 0), axis=None):
             break
         label_list, first_pos = first_seen_and_index(_rows(counts, label))
         ngroup = len(first_pos)
@@ -258,17 +264,21 @@ def group_sites(crystal: Crystal, contacts) -> Sites:
     )
 
 
-def _order(key: np.ndarray, dist: np.ndarray, nkeys: int) -> np.ndarray:
-    """Order by key (integers below nkeys), then distance.  Ties in both
-    carry equal values, so any order among them serves.  Keys of 16 bits
-    sort by radix; for many contacts, sorting the distances first and then
-    the keys stably beats lexsort, whose cost grows fast with the length."""
+def _order(key: np.ndarray, d: np.ndarray, dd: np.ndarray, nkeys: int) -> np.ndarray:
+    """Order of both ends of every contact (key: integers below nkeys, one
+    per end, the ends seen from i and then from j; d: the contacts'
+    distances; dd: d twice, as the ends) by key, then distance.  Ties in
+    both carry equal values, so any order among them serves.  Keys of 16
+    bits sort by radix; beyond a few hundred ends, sorting the distances
+    first (each contact once, its two ends side by side) and then the keys
+    stably beats lexsort, whose cost grows fast with the length."""
     if nkeys <= 32767:
         key = key.astype(np.int16)
-        if key.size > 800:
-            o = dist.argsort()
-            return o[key[o].argsort(kind="stable")]
-    return np.lexsort((dist, key))
+        if key.size > 200:
+            o = d.argsort()
+            o = np.stack((o, o + d.size), axis=1).ravel()
+            return o[key.take(o).argsort(kind="stable")]
+    return np.lexsort((dd, key))
 
 
 _VOID: dict = {}  # np.dtype((np.void, 8 * k)) by k
