@@ -190,28 +190,42 @@ def _occupancy(case: Case, partial: np.ndarray) -> F.Finding:
 # Explaining a closed count
 
 
+# Per atomic number: block and valence (elements.block, elements.valence),
+# as lists for the per-structure path.
+_BLOCK = ["" if sym == "X" else elements.block(sym) for sym in elements.symbols()]
+_VALENCE_OF = [0 if sym == "X" else elements.valence(sym) for sym in elements.symbols()]
+
+
 def _explanations(case: Case) -> list[F.Finding]:
     crystal, c = case.crystal, case.count
     out: list[F.Finding] = []
     syms = elements.symbols()
     cl = c.closure
-    first = _first_atoms(c)
+    first = None  # _first_atoms(c), when a finding names a group
     lone, dstates, lanth = [], [], []
+    groups, valence = c.groups, case.valence
     for g, k in cl.keep.items():
-        sym = syms[c.groups[g][1]]
-        blk = elements.block(sym)
+        z = groups[g][1]
+        blk = _BLOCK[z]
         if blk == "p":
             atoms = c.group_of == g
             nonbond = k - _mean(c.aa_bonds[atoms])  # electrons kept beyond cation-cation bonds
             if nonbond > 1e-6:
+                if first is None:
+                    first = _first_atoms(c)
                 w = float(crystal.occupancy[atoms].sum())
-                lone.append((crystal.label(first[g]), sym, w * nonbond, first[g]))
-        elif blk == "d" or sym in elements.DLIKE_ACTINIDES:
-            if k > 1e-6:
-                v = case.valence.get(sym, elements.valence(sym))
+                lone.append((crystal.label(first[g]), syms[z], w * nonbond, first[g]))
+        elif k > 1e-6:
+            sym = syms[z]
+            if blk == "d" or sym in elements.DLIKE_ACTINIDES:
+                if first is None:
+                    first = _first_atoms(c)
+                v = valence.get(sym, _VALENCE_OF[z])
                 dstates.append((crystal.label(first[g]), sym, v - k, k))
-        elif sym in elements.DIVALENT_LANTHANIDES and k > 1e-6:
-            lanth.append(crystal.label(first[g]))
+            elif sym in elements.DIVALENT_LANTHANIDES:
+                if first is None:
+                    first = _first_atoms(c)
+                lanth.append(crystal.label(first[g]))
     if lone:
         n = sum(x[2] for x in lone)
         who = ", ".join(f"{lab} ({s})" for lab, s, _, _ in lone)
@@ -236,7 +250,7 @@ def _explanations(case: Case) -> list[F.Finding]:
         )
     if lanth:
         out.append(F.DivalentLanthanide(sites=lanth, who=", ".join(lanth)))
-    if c.cc_bond.any():
+    if np.count_nonzero(c.cc_bond):
         pairs, w = _pairs(case, c.cc_bond)
         out.append(
             F.CationCationBonds(
@@ -250,6 +264,8 @@ def _explanations(case: Case) -> list[F.Finding]:
                                    evidence={"pi_electrons_per_cell": cl.pi_from_short, "shortest": pairs}))
     if cl.pi_from_planar > 0:
         out.append(F.PiBonds(n=_fmt(cl.pi_from_planar), evidence={"planar_sites_per_cell": cl.pi_from_planar}))
+    if cl.mixed_groups and first is None:
+        first = _first_atoms(c)
     for g in cl.mixed_groups:
         lab = crystal.label(first[g])
         sym = syms[c.groups[g][1]]
