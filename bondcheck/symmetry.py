@@ -215,7 +215,7 @@ def group_sites(crystal: Crystal, contacts) -> Sites:
                 step = max(1, 2_000_000 // (npos * width))
                 for s in range(0, apart.size, step):
                     f = apart[s : s + step]
-                    r, m = np.nonzero((cls[f, None] == cls) & (np.arange(npos) < f[:, None]))
+                    r, m = ((cls.take(f)[:, None] == cls) & (np.arange(npos) < f[:, None])).nonzero()
                     if r.size * width > 1024:
                         # Rows agree only where their first distances do:
                         # comparing those first leaves fewer whole rows.
@@ -275,8 +275,8 @@ def _order(key: np.ndarray, d: np.ndarray, dd: np.ndarray, nkeys: int) -> np.nda
     if nkeys <= 32767:
         key = key.astype(np.int16)
         if key.size > 200:
-            o = d.argsort()
-            o = np.stack((o, o + d.size), axis=1).ravel()
+            o = d.argsort().repeat(2)
+            o[1::2] += d.size
             return o[key.take(o).argsort(kind="stable")]
     return np.lexsort((dd, key))
 
