@@ -1129,9 +1129,10 @@ def _duplicates(pos: np.ndarray, cell: np.ndarray, widths: list[float], numbers:
     atoms within MERGE_TOL are less than MERGE_TOL / MIN_WIDTH = 0.2 apart in
     each fractional coordinate.  Up to _FEW atoms, all pairs are measured at
     once first, whatever their elements (a few numpy calls on small arrays),
-    and when none is within MERGE_TOL that settles it; beyond _FEW atoms, the
-    cell is cut into bins at least MERGE_TOL wide along each axis, and only
-    atoms in the same or neighbouring bins are compared.
+    and when none is within MERGE_TOL that settles it; beyond _FEW atoms,
+    :func:`_apart_on_grids` settles the usual case, and otherwise the cell is
+    cut into bins at least MERGE_TOL wide along each axis, and only atoms in
+    the same or neighbouring bins are compared.  ``pos`` are in [0, 1).
     """
     n = len(pos)
     if n < 2:
@@ -1147,6 +1148,8 @@ def _duplicates(pos: np.ndarray, cell: np.ndarray, widths: list[float], numbers:
             return None
         sel = numbers[cols] == numbers[rows]
     else:
+        if _apart_on_grids(pos, widths):  # (the usual case, decided cheaply)
+            return None
         nb = np.array([max(1, min(int(w / MERGE_TOL), 1 << 20)) for w in widths], dtype=np.int64)
         b = np.minimum((pos * nb).astype(np.int64), nb - 1)
         mult = np.array([nb[1] * nb[2], nb[2], 1], dtype=np.int64)
@@ -1190,6 +1193,31 @@ def _duplicates(pos: np.ndarray, cell: np.ndarray, widths: list[float], numbers:
     dup = np.zeros(n, dtype=bool)
     dup[cols[near]] = True
     return dup
+
+
+# Bins of :func:`_apart_on_grids`: four times MERGE_TOL across, with a margin
+# far above rounding; four grids, shifted by a quarter of a bin each time.
+_GRID_BIN = 4 * MERGE_TOL * (1 + 1e-3)
+_GRID_SHIFTS = (np.arange(4) / 4)[:, None, None]
+
+
+def _apart_on_grids(pos: np.ndarray, widths: list[float]) -> bool:
+    """True when surely no two atoms (``pos`` in [0, 1)) are within MERGE_TOL
+    of each other: each atom is alone in its bin in each of four grids.
+
+    Along axis k, two atoms within MERGE_TOL are less than MERGE_TOL / w_k
+    apart in that fractional coordinate (w_k the cell's width across it),
+    less than a quarter of a bin of these grids: of the four grids, shifted
+    by a quarter of a bin each, at most one has a bin boundary between them
+    along each axis, so at least one of the four puts them in one bin.
+    False means only that the pairs have to be measured (atoms less than
+    about three bin widths apart may share a bin)."""
+    nb = [max(1, int(w / _GRID_BIN)) for w in widths]
+    k = (pos * nb + _GRID_SHIFTS).astype(np.int64)  # (4, n, 3): bins along each axis, grid by grid
+    k %= nb
+    key = k @ np.array([nb[1] * nb[2], nb[2], 1], dtype=np.int64)
+    key.sort(axis=1)
+    return not (key[:, 1:] == key[:, :-1]).any()
 
 
 def _duplicate_sites(frac: np.ndarray, images: np.ndarray, cell: np.ndarray, numbers: np.ndarray,
