@@ -281,18 +281,18 @@ def _order(key: np.ndarray, d: np.ndarray, dd: np.ndarray, nkeys: int) -> np.nda
     return np.lexsort((dd, key))
 
 
-_VOID: dict = {}  # np.dtype((np.void, 8 * k)) by k
+_VOID: dict = {}  # np.dtype((np.void, k * itemsize)) by k, for bincount's integers
 
 
 def _rows(m: np.ndarray, last: np.ndarray) -> list[bytes]:
-    """The rows of ``m`` (a C-contiguous int64 array whose last column
+    """The rows of ``m`` (a fresh, C-contiguous bincount whose last column
     counted nothing) as bytes after ``last`` is written into that column:
     equal exactly when the rows are equal."""
     k = m.shape[1]
     m[:, k - 1] = last
     void = _VOID.get(k)
     if void is None:
-        void = np.dtype((np.void, 8 * k))
+        void = np.dtype((np.void, k * m.itemsize))  # (bincount gives np.intp, one size per platform)
         if len(_VOID) < 1024:
             _VOID[k] = void
     return m.view(void).ravel().tolist()
