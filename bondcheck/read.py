@@ -416,9 +416,14 @@ def _cif_crystals(data, source: str, block: str | None, lim: limits.Limits,
     if len(doc) == 0:
         raise StructureError("not a CIF file: no data_ block")
 
-    all_blocks = [doc[i] for i in range(len(doc))]  # (indexing is cheaper than iterating)
     # the blocks with atom sites, each with its first atom-site column
-    blocks = [(b, column) for b, column in zip(all_blocks, map(_atom_column, all_blocks)) if column is not None]
+    if len(doc) == 1:  # (the usual case, without the lists)
+        b = doc[0]
+        column = _atom_column(b)
+        blocks = [] if column is None else [(b, column)]
+    else:
+        all_blocks = [doc[i] for i in range(len(doc))]  # (indexing is cheaper than iterating)
+        blocks = [(b, column) for b, column in zip(all_blocks, map(_atom_column, all_blocks)) if column is not None]
     if block is not None:
         wanted = [bc for bc in blocks if bc[0].name == block] or [
             bc for bc in blocks if bc[0].name.lower() == block.lower()]
@@ -1116,6 +1121,23 @@ def _pairs(n: int) -> tuple[np.ndarray, np.ndarray]:
     return rows, cols
 
 
+_FEWER = 16  # up to this many atoms, the pairs' differences by one matrix product
+
+
+@lru_cache(maxsize=_FEWER + 1)
+def _pair_differences(n: int) -> np.ndarray:
+    """The matrix that takes n positions to the differences of the pairs of
+    _pairs(n), row by row (column minus row): its rows hold one 1 and one -1,
+    so each difference is that of the two positions, exactly."""
+    rows, cols = _pairs(n)
+    m = np.zeros((len(rows), n))
+    k = np.arange(len(rows))
+    m[k, cols] = 1.0
+    m[k, rows] = -1.0
+    m.setflags(write=False)
+    return m
+
+
 def _duplicates(pos: np.ndarray, cell: np.ndarray, widths: list[float], numbers: np.ndarray,
                 occ: np.ndarray) -> np.ndarray | None:
     """Atoms that repeat an earlier atom of the same element within MERGE_TOL
@@ -1138,14 +1160,18 @@ def _duplicates(pos: np.ndarray, cell: np.ndarray, widths: list[float], numbers:
     if n < 2:
         return None
     if n <= _FEW:
-        rows, cols = _pairs(n)
-        d = pos.take(cols, 0)
-        d -= pos.take(rows, 0)
+        if n <= _FEWER:  # (one product with the pairs' differences, fewer numpy calls)
+            d = _pair_differences(n) @ pos
+        else:
+            rows, cols = _pairs(n)
+            d = pos.take(cols, 0)
+            d -= pos.take(rows, 0)
         d -= np.rint(d)
         d = d @ cell
         d *= d
         if np.minimum.reduce(d @ _ONES3) > _APART:
             return None
+        rows, cols = _pairs(n)
         sel = numbers[cols] == numbers[rows]
     else:
         if _apart_on_grids(pos, widths):  # (the usual case, decided cheaply)
@@ -1343,7 +1369,7 @@ def _crystal_from_block(block, column, source: str, max_atoms: int = limits.MAX_
     vol, widths = _check_widths(cell)
 
     candidates, hm, how = _symmetry(block, alpha, gamma)
-    m = max(len(group.rot) for group, _ in candidates)
+    m = max([len(group.rot) for group, _ in candidates]) if len(candidates) > 1 else len(candidates[0][0].rot)
     if nrow * m > max_atoms:  # count before expanding
         limits.check_atoms(min(_count_images(frac, cell, group) for group, _ in candidates), max_atoms)
     best = None
