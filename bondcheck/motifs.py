@@ -66,37 +66,55 @@ def _components(n: int, bi: list[int], bj: list[int], shift: list) -> tuple[list
         adj[a].append((b, x, y, z))
         adj[b].append((a, -x, -y, -z))
     comp = [-1] * n
-    offset: list[tuple[int, int, int]] = [(0, 0, 0)] * n
+    seen = [False] * n
+    offset: list = [None] * n
     dims: dict[int, int] = {}
     cid = 0
     for start in range(n):
-        if comp[start] >= 0:
+        if seen[start]:
             continue
-        comp[start] = cid
         if not adj[start]:  # a lone atom: a component of its own, 0D
+            seen[start] = True
+            comp[start] = cid
             dims[cid] = 0
             cid += 1
             continue
-        offset[start] = (0, 0, 0)
-        stack = [start]
-        cycles = set()
-        while stack:
-            a = stack.pop()
-            ox, oy, oz = offset[a]
-            for b, x, y, z in adj[a]:
-                o = (ox + x, oy + y, oz + z)
-                if comp[b] < 0:
-                    comp[b] = cid
-                    offset[b] = o
-                    stack.append(b)
-                else:
-                    bx, by, bz = offset[b]
-                    d = (o[0] - bx, o[1] - by, o[2] - bz)
-                    if d != (0, 0, 0):
-                        cycles.add(d)
+        members, cycles = _walk(adj, start, seen, offset)
+        for k in members:
+            comp[k] = cid
         dims[cid] = _rank(cycles)
         cid += 1
     return comp, dims
+
+
+def _walk(adj, start: int, seen: list, offset: list) -> tuple[list[int], set]:
+    """The component of node `start`, walked depth first over `adj` (adj[a]:
+    (b, x, y, z) for each bond of a to the image of b shifted by (x, y, z)
+    cells): its nodes in the order reached, and the set of cycle vectors
+    (the shifts between two ways of reaching a node), whose rank is the
+    component's dimensionality. Marks each node reached in `seen` and
+    writes its cell offset to `offset`."""
+    seen[start] = True
+    offset[start] = (0, 0, 0)
+    stack = [start]
+    members = [start]
+    cycles = set()
+    while stack:
+        a = stack.pop()
+        ox, oy, oz = offset[a]
+        for b, x, y, z in adj[a]:
+            o = (ox + x, oy + y, oz + z)
+            if not seen[b]:
+                seen[b] = True
+                offset[b] = o
+                stack.append(b)
+                members.append(b)
+            else:
+                bx, by, bz = offset[b]
+                d = (o[0] - bx, o[1] - by, o[2] - bz)
+                if d != (0, 0, 0):
+                    cycles.add(d)
+    return members, cycles
 
 
 def _rank(vectors: set[tuple[int, int, int]]) -> int:
@@ -169,36 +187,19 @@ def anion_components(crystal, contacts, count) -> list[Component]:
     seen = [False] * n
     offset: list = [None] * n
     out = []
-    # Components in order of their first node, each walked as `_components`
-    # walks it (the same cycle vectors, hence the same dimensionality). A
+    # Components in order of their first node, each walked by `_walk` as
+    # `_components` walks it (the same cycle vectors, hence the same
+    # dimensionality). A
     # node's degree is the length of its neighbour list (a bond to its own
     # image counts at both ends), and a component's edges half the sum.
     for start in range(n):
         if seen[start]:
             continue
-        seen[start] = True
         if start not in adj:  # a lone anion: a component of its own, 0D
+            seen[start] = True
             out.append(Component([atom_list[start]], 0, "isolated anion", syms[z_list[start]], 0, 0.0))
             continue
-        offset[start] = (0, 0, 0)
-        stack = [start]
-        members = [start]
-        cycles = set()
-        while stack:
-            a = stack.pop()
-            ox, oy, oz = offset[a]
-            for b, x, y, z in adj[a]:
-                o = (ox + x, oy + y, oz + z)
-                if not seen[b]:
-                    seen[b] = True
-                    offset[b] = o
-                    stack.append(b)
-                    members.append(b)
-                else:
-                    bx, by, bz = offset[b]
-                    d = (o[0] - bx, o[1] - by, o[2] - bz)
-                    if d != (0, 0, 0):
-                        cycles.add(d)
+        members, cycles = _walk(adj, start, seen, offset)
         members.sort()
         deg = [len(adj[k]) for k in members]
         per_z: dict[int, int] = {}
