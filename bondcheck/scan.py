@@ -1218,18 +1218,25 @@ def _show_progress(flag: bool | None) -> bool:
 class _Progress:
     """A rich progress line on standard error: entries done (of how many,
     once a background count has finished), entries/s, time left, and running
-    counts per verdict."""
+    counts per verdict.  On a terminal narrower than WIDE columns the bar is
+    shorter and the counts are those a curator watches for (mismatch, error,
+    timeout), so that the line keeps its count, rate and time left instead of
+    rich cutting them short; the summary at the end has every count."""
 
-    def __init__(self, inputs: list[str]):
+    WIDE = 110
+
+    def __init__(self, inputs: list[str], console=None):
         import threading
 
         from rich.console import Console
         from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeRemainingColumn
 
+        console = console or Console(stderr=True)
+        self.narrow = console.width < self.WIDE
         self.progress = Progress(
-            TextColumn("[bold]scan"), BarColumn(), MofNCompleteColumn(),
+            TextColumn("[bold]scan"), BarColumn(bar_width=12 if self.narrow else 40), MofNCompleteColumn(),
             TextColumn("{task.fields[rate]}"), TimeRemainingColumn(), TextColumn("{task.fields[counts]}"),
-            console=Console(stderr=True), transient=False, refresh_per_second=4)
+            console=console, transient=False, refresh_per_second=4)
         self.task = self.progress.add_task("scan", total=None, rate="", counts="")
         self.t0 = time.perf_counter()
         self.last = 0.0
@@ -1244,7 +1251,8 @@ class _Progress:
             except Exception:
                 self._total = None
 
-        threading.Thread(target=count, daemon=True, name="bondcheck-count").start()
+        self.counter = threading.Thread(target=count, daemon=True, name="bondcheck-count")
+        self.counter.start()
 
     def update(self, tally: Tally, force: bool = False) -> None:
         now = time.perf_counter()
@@ -1252,10 +1260,12 @@ class _Progress:
             return
         self.last = now
         dt = now - self.t0
-        rate = f"{tally.entries / dt:,.0f} entries/s" if dt > 0 else ""
+        unit = "/s" if self.narrow else " entries/s"
+        rate = f"{tally.entries / dt:,.0f}{unit}" if dt > 0 else ""
         c = tally.verdicts
-        parts = [f"{k} {c[k]}" for k in ("consistent", "mismatch", "not-applicable") if c.get(k)]
-        parts += [f"{k} {tally.status[k]}" for k in ("error", "timeout") if tally.status.get(k)]
+        shown = ("mismatch",) if self.narrow else ("consistent", "mismatch", "not-applicable")
+        parts = [f"{k} {c[k]:,}" for k in shown if c.get(k)]
+        parts += [f"{k} {tally.status[k]:,}" for k in ("error", "timeout") if tally.status.get(k)]
         kw = {"total": self._total} if self._total is not None else {}
         self.progress.update(self.task, completed=tally.entries, rate=rate, counts=" ".join(parts), **kw)
 

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import json
 import os
+import re
 import shutil
 import signal
 import sqlite3
@@ -623,3 +624,44 @@ def test_summary_command(mixed_scan, capsys):
     text = capsys.readouterr().out
     assert "slowest entries" in text and "verdict" in text
     assert main(["summary", str(Path(files[0]).with_suffix(".missing"))]) == 2
+
+
+@pytest.mark.parametrize("width", [80, 132])
+def test_progress_line_fits_the_terminal(tmp_path, width):
+    # The live line on a terminal of the usual 80 columns and a wide one, at
+    # the end of a long scan: nothing cut short (rich puts an ellipsis in
+    # place of the count, the rate or the time left when the line is too
+    # long), the entries done of all, the rate, and the mismatch and error
+    # counts.  The rows are those of a real scan (ase's bundled COD minerals,
+    # pymatgen's bundled structures, of which the scans above count one a
+    # mismatch, and one broken file), each taken 4000 times, as a collection
+    # of 120,000 entries would count them.
+    import io
+
+    from rich.console import Console
+
+    from bondcheck.scan import _Progress
+
+    for f in sorted(MINERALS.glob("*.cif")) + sorted(PMG.glob("*.json")):
+        shutil.copy(f, tmp_path / f.name)
+    (tmp_path / "broken.cif").write_text("data_broken\n_cell_length_a 3\n")
+    out = tmp_path / "rows.jsonl"
+    scan([str(tmp_path)], out=[str(out)], store=None, executor="inline", progress=False)
+    rows = list(read_rows(str(out)))
+    tally = Tally()
+    for _ in range(4000):
+        for row in rows:
+            tally.add(row)
+    n = tally.entries
+    assert n == 4000 * len(rows) and tally.status["error"] >= 4000 and tally.verdicts["mismatch"] >= 4000
+    buf = io.StringIO()
+    bar = _Progress([str(tmp_path)], console=Console(file=buf, width=width, force_terminal=True, color_system=None))
+    bar.counter.join(10)
+    bar._total = n  # (the background count saw the folder once)
+    bar.close(tally)
+    text = re.sub(r"\x1b\[[0-9;?]*[A-Za-z]", "", buf.getvalue())  # (the cursor's control sequences)
+    last = [line for line in text.replace("\r", "\n").splitlines() if line.strip()][-1]
+    assert "…" not in last and len(last.rstrip()) <= width
+    assert f"{n}/{n}" in last and "/s" in last
+    assert f"mismatch {tally.verdicts['mismatch']:,}" in last and f"error {tally.status['error']:,}" in last
+    assert ("consistent" in last) == (width >= 110)
