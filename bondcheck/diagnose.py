@@ -190,12 +190,6 @@ def _occupancy(case: Case, partial: np.ndarray) -> F.Finding:
 # Explaining a closed count
 
 
-# Per atomic number: block and valence (elements.block, elements.valence),
-# as lists for the per-structure path.
-_BLOCK = ["" if sym == "X" else elements.block(sym) for sym in elements.symbols()]
-_VALENCE_OF = [0 if sym == "X" else elements.valence(sym) for sym in elements.symbols()]
-
-
 def _explanations(case: Case) -> list[F.Finding]:
     crystal, c = case.crystal, case.count
     out: list[F.Finding] = []
@@ -206,7 +200,7 @@ def _explanations(case: Case) -> list[F.Finding]:
     groups, valence = c.groups, case.valence
     for g, k in cl.keep.items():
         z = groups[g][1]
-        blk = _BLOCK[z]
+        sym, blk, v, _keep = elements.facts(z)  # (cached per element)
         if blk == "p":
             atoms = c.group_of == g
             nonbond = k - _mean(c.aa_bonds[atoms])  # electrons kept beyond cation-cation bonds
@@ -214,13 +208,12 @@ def _explanations(case: Case) -> list[F.Finding]:
                 if first is None:
                     first = _first_atoms(c)
                 w = float(crystal.occupancy[atoms].sum())
-                lone.append((crystal.label(first[g]), syms[z], w * nonbond, first[g]))
+                lone.append((crystal.label(first[g]), sym, w * nonbond, first[g]))
         elif k > 1e-6:
-            sym = syms[z]
             if blk == "d" or sym in elements.DLIKE_ACTINIDES:
                 if first is None:
                     first = _first_atoms(c)
-                v = valence.get(sym, _VALENCE_OF[z])
+                v = valence.get(sym, v)
                 dstates.append((crystal.label(first[g]), sym, v - k, k))
             elif sym in elements.DIVALENT_LANTHANIDES:
                 if first is None:
