@@ -189,9 +189,9 @@ def anion_components(crystal, contacts, count) -> list[Component]:
     out = []
     # Components in order of their first node, each walked by `_walk` as
     # `_components` walks it (the same cycle vectors, hence the same
-    # dimensionality). A
-    # node's degree is the length of its neighbour list (a bond to its own
-    # image counts at both ends), and a component's edges half the sum.
+    # dimensionality). A node's degree is the length of its neighbour list
+    # (a bond to its own image counts at both ends), and a component's edges
+    # half the sum.
     for start in range(n):
         if seen[start]:
             continue
