@@ -709,5 +709,5 @@ def _cutoff_range(case: Case, verdict: str) -> list[F.Finding]:
             break
         hi = f
     pct = f"{(lo - 1) * 100:+.0f}% to {(hi - 1) * 100:+.0f}%"
-    return [F.AmbiguousCutoff(sites=case.fragile_sites, n=len(case.fragile_sites), pct=round(WOBBLE * 100),
+    return [F.AmbiguousCutoff(sites=case.fragile_sites, n=len(case.fragile_sites), pct=f"{WOBBLE * 100:g}",
                               rng=pct, evidence={"sites": case.fragile_sites, "verdict_holds_for_scale": [lo, hi]})]
