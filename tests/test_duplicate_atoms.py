@@ -71,18 +71,21 @@ def test_duplicates_match_the_pair_by_pair_definition(seed, n, planted, partial)
     pos = rng.random((n, 3))
     numbers = rng.choice([8, 14, 26], n)
     occ = np.where(rng.random(n) < 0.3, 0.5, 1.0) if partial else np.ones(n)
+    if rng.random() < 0.5:  # atoms on faces, as P 1 files list them
+        pos[: n // 4, int(rng.integers(3))] = 0.0
     # Copies of random atoms, moved by up to 1.5 MERGE_TOL in a random
-    # direction (so some within the tolerance, some just outside), often
-    # across a face of the cell.
+    # direction (so some within the tolerance, some just outside); half of
+    # the originals first put on a face of the cell, so that their copies
+    # often lie across it (near pairs only through the periodic image).
     for _ in range(planted):
         k = int(rng.integers(n))
+        if rng.random() < 0.5:
+            pos[k, int(rng.integers(3))] = 0.0
         step = rng.normal(size=3)
         step *= rng.uniform(0.0, 1.5 * R.MERGE_TOL) / np.linalg.norm(step)
         pos = np.vstack([pos, pos[k] + step @ inv])
         numbers = np.append(numbers, numbers[k])
         occ = np.append(occ, occ[k] if rng.random() < 0.8 else 0.5)
-    if rng.random() < 0.5:  # atoms on faces, as P 1 files list them
-        pos[: n // 4, int(rng.integers(3))] = 0.0
     pos = R._wrap(pos)
     got = R._duplicates(pos, cell, widths, numbers, occ)
     want = reference(pos, cell, numbers, occ)
