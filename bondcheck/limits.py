@@ -21,13 +21,14 @@ from __future__ import annotations
 import contextlib
 import contextvars
 import os
+import stat
 import zlib
 from dataclasses import dataclass, fields, replace
 
 from .record import StructureError
 
 __all__ = ["Limits", "current", "applied", "MAX_FILE_BYTES", "MAX_ATOMS", "MAX_ARCHIVE_BYTES",
-           "MAX_ARCHIVE_ENTRIES", "check_size", "check_atoms", "read_capped", "gunzip_capped"]
+           "MAX_ARCHIVE_ENTRIES", "check_size", "check_atoms", "read_capped", "read_file", "gunzip_capped"]
 
 MB = 1024 * 1024
 GB = 1024 * MB
@@ -205,6 +206,25 @@ class FdReads:
                 got += len(more)
             data = b"".join(parts)
         return data
+
+
+def read_file(path, limit: int, what: str = "file") -> bytes:
+    """A file's bytes, through its bare descriptor (os.open and os.read, see
+    :class:`FdReads`): a regular file over ``limit`` bytes turned away by its
+    size before reading, and no file read past ``limit`` (StructureError),
+    should it grow meanwhile or have no size (a pipe).  A regular file takes
+    one read of the size it has and one more that finds its end.  OSError as
+    os.open and os.read raise it."""
+    fd = os.open(path, O_READ)
+    try:
+        size = None
+        st = os.fstat(fd)
+        if stat.S_ISREG(st.st_mode):
+            size = st.st_size
+            check_size(size, limit, what)
+        return read_capped(FdReads(fd), limit, what, size=size)
+    finally:
+        os.close(fd)
 
 
 def gunzip_capped(data: bytes, limit: int, what: str = "file") -> bytes:

@@ -16,7 +16,6 @@ import json
 import math
 import os
 import re
-import stat
 from functools import lru_cache
 from pathlib import Path
 from typing import Iterator, NamedTuple
@@ -196,21 +195,11 @@ def _read_path(path: str, block: str | None, lim: limits.Limits) -> list[Crystal
 def _read_bytes(path, max_bytes: int) -> bytes:
     """The file's bytes (gunzipped for ``*.gz``), read in chunks up to the limit.
 
-    The file is read through its descriptor (os.open, os.read), which costs
-    less than a Python file object; :class:`limits.FdReads` gives it the
-    reads of a buffered binary file.
+    The file is read through its descriptor (:func:`limits.read_file`),
+    which costs less than a Python file object.
     """
     try:
-        fd = os.open(path, limits.O_READ)
-        try:
-            st = os.fstat(fd)
-            size = None
-            if stat.S_ISREG(st.st_mode):
-                size = st.st_size
-                limits.check_size(size, max_bytes)
-            data = limits.read_capped(limits.FdReads(fd), max_bytes, size=size)
-        finally:
-            os.close(fd)
+        data = limits.read_file(path, max_bytes)
     except FileNotFoundError:
         raise StructureError(f"no such file: {path}") from None
     except IsADirectoryError:

@@ -26,7 +26,7 @@ import stat
 import sys
 from typing import Iterable, Iterator
 
-from .limits import O_READ, FdReads, check_size, current, gunzip_capped, read_capped, size_error
+from .limits import current, gunzip_capped, read_capped, read_file, size_error
 from .record import StructureError
 
 __all__ = ["Entry", "iter_entries", "count_entries", "load_crystals", "read_list"]
@@ -199,7 +199,7 @@ def _one_path(path: str, load: bool) -> Iterator[Entry]:
         yield Entry(path, name, path=path)
     else:
         try:
-            data = _read_file(path, current().max_bytes)
+            data = read_file(path, current().max_bytes)
         except OSError as exc:
             yield Entry(path, name, path=path, error=f"cannot read file: {exc.strerror or exc}")
             return
@@ -207,20 +207,6 @@ def _one_path(path: str, load: bool) -> Iterator[Entry]:
             yield Entry(path, name, path=path, error=str(exc))
             return
         yield Entry(path, name, data=data, path=path)
-
-
-def _read_file(path: str, cap: int) -> bytes:
-    """The bytes of a plain file: turned away by its size before reading if
-    over ``cap`` bytes, and never read past ``cap`` (StructureError) should it
-    grow meanwhile.  Read through the bare descriptor: one read of the size
-    the file has, one more that finds its end."""
-    fd = os.open(path, O_READ)
-    try:
-        size = os.fstat(fd).st_size
-        check_size(size, cap)
-        return read_capped(FdReads(fd), cap, size=size)
-    finally:
-        os.close(fd)
 
 
 def _member_entry(archive: str, member: str, data: bytes | None) -> Entry:
