@@ -191,14 +191,13 @@ def one(name: str, files: list[str], workdir: str) -> dict:
 
         lst = os.path.join(workdir, "files.txt")
         store = None
-        if name.endswith(" warm"):  # start the worker server first, off the clock
-            name = name[: -len(" warm")]
-            scan(files[:2], out=[os.path.join(workdir, "warm.jsonl")], store=None, jobs={"jobs=1": 1}.get(name, 2),
-                 progress=False)
-            cpu0 = time.process_time()
-            t0 = time.perf_counter()
+        warm, name = name.endswith(" warm"), name.removesuffix(" warm")
         jobs = {"inline": 1, "jobs=1": 1}.get(name, 2)
         executor = "inline" if name == "inline" else "process"
+        if warm:  # start the worker server first, off the clock
+            scan(files[:2], out=[os.path.join(workdir, "warm.jsonl")], store=None, jobs=jobs, progress=False)
+            cpu0 = time.process_time()
+            t0 = time.perf_counter()
         if name in ("store", "rerun"):
             store = os.path.join(workdir, "store.sqlite")
         from bondcheck.sources import read_list
