@@ -52,39 +52,34 @@ def periodic_components(n: int, bi, bj, shift) -> tuple[np.ndarray, dict[int, in
     shifted by shift[k] cells. Returns (component id per atom, {id: dim}).
     (ase's RDA class counts a finite cluster that crosses the cell boundary as
     two components, which is right for its histogram but not for naming motifs.)
+    The graphs are small: plain Python lists and tuples walk them faster than
+    numpy arrays would.
     """
-    comp, dims = _components(n, np.asarray(bi).tolist(), np.asarray(bj).tolist(), np.asarray(shift).tolist())
-    return np.array(comp, dtype=np.int64), dims
-
-
-def _components(n: int, bi: list[int], bj: list[int], shift: list) -> tuple[list[int], dict[int, int]]:
-    """`periodic_components` over plain lists, returning a list of component
-    ids. The graphs are small: plain Python lists and tuples walk them faster
-    than numpy arrays would."""
-    adj: list[list[tuple[int, int, int, int]]] = [[] for _ in range(n)]
-    for a, b, (x, y, z) in zip(bi, bj, shift):
-        adj[a].append((b, x, y, z))
-        adj[b].append((a, -x, -y, -z))
+    adj = _adjacency(n, np.asarray(bi).tolist(), np.asarray(bj).tolist(), np.asarray(shift).tolist())
     comp = [-1] * n
     seen = [False] * n
     offset: list = [None] * n
     dims: dict[int, int] = {}
-    cid = 0
     for start in range(n):
         if seen[start]:
             continue
-        if not adj[start]:  # a lone atom: a component of its own, 0D
-            seen[start] = True
-            comp[start] = cid
-            dims[cid] = 0
-            cid += 1
-            continue
-        members, cycles = _walk(adj, start, seen, offset)
+        cid = len(dims)
+        members, cycles = _walk(adj, start, seen, offset)  # (a lone atom: itself, no cycles, 0D)
         for k in members:
             comp[k] = cid
         dims[cid] = _rank(cycles)
-        cid += 1
-    return comp, dims
+    return np.array(comp, dtype=np.int64), dims
+
+
+def _adjacency(n: int, bi: list[int], bj: list[int], shift: list) -> list[list[tuple[int, int, int, int]]]:
+    """Neighbour lists of nodes 0..n-1 for `_walk`: a bond joining node bi[k]
+    to the image of node bj[k] shifted by shift[k] cells gives bi[k] the entry
+    (bj[k], x, y, z) and bj[k] the entry (bi[k], -x, -y, -z)."""
+    adj: list[list[tuple[int, int, int, int]]] = [[] for _ in range(n)]
+    for a, b, (x, y, z) in zip(bi, bj, shift):
+        adj[a].append((b, x, y, z))
+        adj[b].append((a, -x, -y, -z))
+    return adj
 
 
 def _walk(adj, start: int, seen: list, offset: list) -> tuple[list[int], set]:
@@ -170,32 +165,20 @@ def anion_components(crystal, contacts, count) -> list[Component]:
         return [Component([a], 0, "isolated anion", syms[z], 0, 0.0) for a, z in zip(atom_list, z_list)]
     sel = contacts.bonded.nonzero()[0][aa]  # the anion-anion bonds among all contacts
     node = role.cumsum() - 1  # node number of each anion (its rank among the anions)
-    # Neighbours of the nodes that have any, as in `_components`: a bond a-b
-    # at shift s gives a the image of b at s, and b the image of a at -s.
-    adj: dict[int, list[tuple[int, int, int, int]]] = {}
-    for a, b, (x, y, z) in zip(node[contacts.i[sel]].tolist(), node[contacts.j[sel]].tolist(),
-                               contacts.shift[sel].tolist()):
-        nb = adj.get(a)
-        if nb is None:
-            nb = adj[a] = []
-        nb.append((b, x, y, z))
-        nb = adj.get(b)
-        if nb is None:
-            nb = adj[b] = []
-        nb.append((a, -x, -y, -z))
     n = anions.size
+    adj = _adjacency(n, node[contacts.i[sel]].tolist(), node[contacts.j[sel]].tolist(), contacts.shift[sel].tolist())
     seen = [False] * n
     offset: list = [None] * n
     out = []
     # Components in order of their first node, each walked by `_walk` as
-    # `_components` walks it (the same cycle vectors, hence the same
+    # `periodic_components` walks it (the same cycle vectors, hence the same
     # dimensionality). A node's degree is the length of its neighbour list
     # (a bond to its own image counts at both ends), and a component's edges
     # half the sum.
     for start in range(n):
         if seen[start]:
             continue
-        if start not in adj:  # a lone anion: a component of its own, 0D
+        if not adj[start]:  # a lone anion: a component of its own, 0D
             seen[start] = True
             out.append(Component([atom_list[start]], 0, "isolated anion", syms[z_list[start]], 0, 0.0))
             continue
