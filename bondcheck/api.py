@@ -293,13 +293,15 @@ def _fragile_sites(crystal, contacts, sites, c: Count | None) -> list[str]:
     return [crystal.label(int(rep[s])) for s in sorted(found)]
 
 
-def _r3_ratios(x: np.ndarray) -> list[float | None]:
-    """_r3 of each of per_atom's ratios (positive and below 2, or NaN for
-    none): round(x, 3), or None.  round(x, 3) is the float nearest to n / 1000
-    for the whole number n nearest to x * 1000 (ties to even).  numpy gives
-    the same float wherever the float product x * 1000 is within 0.49 of a
-    whole number: it is off the exact product by less than 1e-12, so that
-    whole number is n.  round() itself takes the rest."""
+def _r3_values(x: np.ndarray) -> list[float | None]:
+    """_r3 of each value of x, for values that are NaN or not negative and
+    below 1000 (per_atom's ratios, below 2, and coordinations): round(v, 3),
+    or None for NaN.  round(v, 3) is the float nearest to n / 1000 for the
+    whole number n nearest to v * 1000 (ties to even).  numpy gives the same
+    float wherever the float product v * 1000 is within 0.49 of a whole
+    number: it is off the exact product by half a unit in its last place at
+    most, below 6e-11, so that whole number is n.  round() itself takes the
+    rest.  (No value is negative, so none rounds to -0.0.)"""
     y = x * 1000.0
     n = np.rint(y)
     out = [v if v == v else None for v in (n / 1000.0).tolist()]
@@ -322,11 +324,6 @@ def _site_groups(crystal, sites) -> tuple:
 def _site_rows(crystal, sites, c: Count | None, groups: tuple, values: tuple) -> list[dict]:
     """One row per (site, element) group of `_site_groups`, in order of the
     first atom of each; values: `per_atom` of the groups."""
-    isfinite = math.isfinite
-
-    def r3_all(values: np.ndarray) -> list[float | None]:  # _r3 of each value
-        return [(x + 0.0 if x.is_integer() else round(x, 3) + 0.0) if isfinite(x) else None for x in values.tolist()]
-
     keys, group, first, counts = groups
     coord, nearest, last, first_out, fragile = values
     # (groups of 8 or more: none among fewer atoms)
@@ -335,10 +332,9 @@ def _site_rows(crystal, sites, c: Count | None, groups: tuple, values: tuple) ->
         occ = group_mean(crystal.occupancy, group, counts, crowded).tolist()
     else:
         occ = [1.0] * len(first)
-    coordination = r3_all(coord)
     ng = len(first)
-    ratios = _r3_ratios(np.concatenate((nearest, last, first_out)))
-    near, lastb, firstu = ratios[:ng], ratios[ng:2 * ng], ratios[2 * ng:]
+    r3 = _r3_values(np.concatenate((coord, nearest, last, first_out)))
+    coordination, near, lastb, firstu = r3[:ng], r3[ng:2 * ng], r3[2 * ng:3 * ng], r3[3 * ng:]
     frag = fragile.tolist()
     mult = None if sites.multiplicity is None else sites.multiplicity.tolist()
     if c is not None:
