@@ -10,7 +10,8 @@ Options(symmetry=False). Prints files/s from wall-clock time and from the
 process's CPU time (the CPU figure is the one to compare on a busy machine),
 and the time per file spent in each stage: read, validate, bonds (neighbour
 list and criterion), sites (spglib or grouping by environment), count,
-per-atom values, diagnose (which counts variants of the structure again),
+per-atom values (the atoms grouped per site and element, the values per
+group, the fragile sites), diagnose (which counts variants of the structure again),
 result rows (formula, site rows) and the rest of check_crystal.
 
 Skips with a message when the corpus is absent.
@@ -30,7 +31,7 @@ STAGES = {
     "bonds": ("find_contacts",),
     "sites": ("find_sites", "group_sites"),
     "count": ("count",),
-    "per_atom": ("per_atom", "_fragile_sites"),
+    "per_atom": ("_site_groups", "per_atom", "_fragile_sites"),
     "diagnose": ("diagnose",),
     "rows": ("formula_of", "_site_rows"),
 }
