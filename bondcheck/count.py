@@ -441,7 +441,7 @@ class _Context:
     """Per-structure quantities shared by the candidate partitions."""
 
     __slots__ = (
-        "crystal", "contacts", "valence_override", "occ", "static", "bonded", "bi", "bj", "_bw", "_bd", "unit_weight",
+        "crystal", "contacts", "valence_override", "occ", "static", "bonded", "bi", "bj", "_bw", "_bd",
     )
 
     def __init__(self, crystal: Crystal, contacts: Contacts, sites: Sites, valence: dict[str, int]):
@@ -453,11 +453,10 @@ class _Context:
         c = contacts
         self.bonded = c.bonded
         self.bi, self.bj = c.i[c.bonded], c.j[c.bonded]
-        # Whole atoms give contact weights of 1 (occupancy products), the
-        # rule: sums of bond weights are then counts, and the weights of the
-        # bonds are not needed.
-        self.unit_weight = self.static.full and not np.count_nonzero(c.weight != 1.0)
-        self._bw = None if self.unit_weight else c.weight[c.bonded]
+        # Contact weights are occupancy products (Contacts.weight): with whole
+        # atoms, the rule, every weight is 1, sums of bond weights are counts,
+        # and the weights of the bonds are not needed.
+        self._bw = None if self.static.full else c.weight[c.bonded]
         self._bd = None
 
     @property
@@ -572,21 +571,19 @@ class _Context:
         ends = np.concatenate(ends)
         st = self.static
         if st.full:
-            # Whole atoms: the sums over atoms are counts (see _Static.full).
+            # Whole atoms: the sums over atoms are counts (see _Static.full),
+            # and so are the sums of bond weights (every weight 1).
             n_anion = float(sum([st.z_count[k] for k in anion_z]))
             shell = float(sum([st.z_count[k] * _TARGET[k] for k in anion_z]))
             per = np.bincount(ends, minlength=n)
             if ends.size:  # bincount with weights gives floats, but whole numbers with nothing to add
                 per = per.astype(np.float64)
+            aa_ends = 2.0 * int(np.count_nonzero(aa))
+            cc_e = 2.0 * int(np.count_nonzero(cc)) if cc_any else 0.0
         else:
             n_anion = float(occ[role].sum())
             shell = float(st.occ_target[role].sum())
             per = np.bincount(ends, weights=occ[np.concatenate(partner)], minlength=n)
-        if self.unit_weight:
-            # Every bond weight is 1: the sums of weights are counts of bonds.
-            aa_ends = 2.0 * int(np.count_nonzero(aa))
-            cc_e = 2.0 * int(np.count_nonzero(cc)) if cc_any else 0.0
-        else:
             aa_ends = 2.0 * float(bw[aa].sum())
             cc_e = 2.0 * float(bw[cc].sum()) if cc_any else 0.0
         vec = self.static.electrons / n_anion
@@ -693,7 +690,7 @@ class _Context:
         z = self.crystal.numbers
         order = 10.0 ** ((rad[z[bi]] + rad[z[bj]] - self.bd[ab]) / PAULING_K)
         extra = np.where(order >= TRIPLE_ORDER, 2.0, np.where(order >= DOUBLE_ORDER, 1.0, 0.0))
-        weighted = extra if self.unit_weight else self._bw[ab] * extra  # 1.0 * extra is extra
+        weighted = extra if self.static.full else self._bw[ab] * extra  # 1.0 * extra is extra
         if not np.count_nonzero(planar_atom):
             return 2.0 * float(weighted.sum()), 0.0
         planar = float(self.occ[planar_atom].sum())
