@@ -1040,13 +1040,7 @@ def _expand(frac: np.ndarray, cell: np.ndarray, group: _Group,
     n, m = len(frac), len(group.rot)
     if m == 1:  # the identity alone (P 1)
         return (frac if inside else _wrap(frac)), None, None
-    pos = (frac @ group.ops).reshape(n, m, 3)
-    pos += group.tran
-    d = pos - frac[:, None, :]
-    d -= np.rint(d)
-    d = d @ cell
-    d *= d
-    stab = d @ _ONES3 < MERGE_TOL ** 2  # (n, m): the operations that keep each site in place
+    pos, stab = _images(frac, cell, group)
     # Sites kept in place by more than the identity (the first operation).
     # (ufuncs and methods: numpy's function wrappers cost more than the work)
     special = np.logical_or.reduce(stab[:, 1:], axis=1).nonzero()[0]
@@ -1056,6 +1050,18 @@ def _expand(frac: np.ndarray, cell: np.ndarray, group: _Group,
     for i in special.tolist():
         keep[i] = _kept_images(group, stab[i])
     return _wrap(pos[keep]), keep.nonzero()[0], pos
+
+
+def _images(frac: np.ndarray, cell: np.ndarray, group: _Group) -> tuple[np.ndarray, np.ndarray]:
+    """The images of the sites under each operation, (n, m, 3), and which
+    operations keep each site in place (within MERGE_TOL), (n, m)."""
+    pos = (frac @ group.ops).reshape(len(frac), len(group.rot), 3)
+    pos += group.tran
+    d = pos - frac[:, None, :]
+    d -= np.rint(d)
+    d = d @ cell
+    d *= d
+    return pos, d @ _ONES3 < MERGE_TOL ** 2
 
 
 _MAX_KEPT = 64  # stabilisers remembered per group (the few a corpus meets; memory stays small)
@@ -1078,16 +1084,11 @@ def _count_images(frac: np.ndarray, cell: np.ndarray, group: _Group) -> int:
     """How many atoms :func:`_expand` would give, counted in chunks of sites so
     that a huge cell is turned away without building it: a site whose images
     fall together in groups of k (its site-symmetry order) gives m / k atoms."""
-    rot, tran = group.rot, group.tran
-    m = len(rot)
-    metric = cell @ cell.T
+    m = len(group.rot)
     step = max(1, 2_000_000 // (3 * m))
     total = 0
     for s in range(0, len(frac), step):
-        f = frac[s:s + step]
-        d = np.einsum("kij,nj->nki", rot, f) + tran - f[:, None, :]
-        d -= np.rint(d)
-        k = (np.einsum("...i,ij,...j->...", d, metric, d) < MERGE_TOL ** 2).sum(1)
+        k = _images(frac[s:s + step], cell, group)[1].sum(1)
         total += int(np.ceil(m / np.maximum(k, 1)).sum())
     return total
 
