@@ -183,7 +183,7 @@ def group_sites(crystal: Crystal, contacts) -> Sites:
     cls, leader = first_seen_and_index(_rows(np.bincount(ak, minlength=npos * (nt + 1)).reshape(npos, nt + 1), tcode))
     # Groups start as the classes, numbered in order of first appearance as
     # the groups are.
-    label_list, ngroup, first_pos = cls, len(leader), leader
+    ngroup, first_pos = len(leader), leader
     label = cls = np.array(cls, dtype=np.int64)
     if ngroup < npos:  # (else every position is a class, and a site, of its own)
         first = None
