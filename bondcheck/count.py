@@ -164,7 +164,7 @@ def count(
 
             raise StructureError(f"--anions names {', '.join(missing)}, not present in {crystal.name or 'the structure'}")
         return ctx.evaluate(list(anions), "set by the user (--anions)")
-    candidates = [(list(an), why) for an, why in ctx.static.candidates]
+    candidates = ctx.static.candidates  # ((anion symbols), why) per split, from _candidates
     if not candidates:
         return None
     tried = []
@@ -466,7 +466,7 @@ class _Context:
             self._bd = self.contacts.d[self.bonded]
         return self._bd
 
-    def polyanion_split(self, start: list[str]) -> tuple[list[str], str]:
+    def polyanion_split(self, start: tuple[str, ...]) -> tuple[list[str], str]:
         """Grow the anion set by elements bonded to anions with a small
         electronegativity difference (< 0.5): a Ga-Ge framework, As-S pairs."""
         nums = elements.numbers()
@@ -520,7 +520,7 @@ class _Context:
             "electronegativity difference below 0.5; no split closes the count"
         )
 
-    def evaluate(self, anions: list[str], why: str, close_invalid: bool = True) -> Count:
+    def evaluate(self, anions: list[str] | tuple[str, ...], why: str, close_invalid: bool = True) -> Count:
         """The count of one anion set. close_invalid: look for a closure of an
         implausible split too (the user's anion set is reported as it
         counts); without it such a split gets Closure(False) at once, as among
