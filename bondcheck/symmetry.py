@@ -185,51 +185,50 @@ def group_sites(crystal: Crystal, contacts) -> Sites:
     # the groups are.
     ngroup, first_pos = len(leader), leader
     label = cls = np.array(cls, dtype=np.int64)
-    if ngroup < npos:  # (else every position is a class, and a site, of its own)
-        first = None
-        if a.size:
-            # Distances in a padded table, each atom's sorted by partner type
-            # and distance (column: the contact's place among the atom's
-            # contacts): within a class the rows line up.
-            dd = np.concatenate([d, d])
-            order = _order(ak, d, dd, npos * (nt + 1))
-            a_s = a[order]
-            # (each atom's first place in a_s looked up once per atom, not
-            # once per contact)
-            col = np.arange(a.size) - a_s.searchsorted(np.arange(npos)).take(a_s)
-            width = int(np.maximum.reduce(col)) + 1
-            table = np.zeros((npos, width))
-            table[a_s, col] = dd[order]
-            # Each atom joins the first atom of its class whose distances agree: the
-            # class's first atom, or for the atoms whose distances differ from that
-            # atom's, the first of the earlier atoms of the class that agrees (or
-            # itself), found in blocks of up to 2e6 distance comparisons.
-            lead = np.array(leader, dtype=np.int64).take(cls)
-            dev = np.subtract(table, table.take(lead, 0))
-            np.abs(dev, out=dev)  # (how far each distance is from its class leader's)
-            # (ufunc reductions: the any() and max() methods' wrappers cost
-            # more than the work on these small tables)
-            if np.maximum.reduce(dev, axis=None) > ENV_TOL:
-                first = lead
-                apart = (np.maximum.reduce(dev, axis=1) > ENV_TOL).nonzero()[0]
-                step = max(1, 2_000_000 // (npos * width))
-                for s in range(0, apart.size, step):
-                    f = apart[s : s + step]
-                    r, m = ((cls.take(f)[:, None] == cls) & (np.arange(npos) < f[:, None])).nonzero()
-                    if r.size * width > 1024:
-                        # Rows agree only where their first distances do:
-                        # comparing those first leaves fewer whole rows.
-                        t0 = table[:, 0]
-                        near = (np.abs(t0[m] - t0[f[r]]) <= ENV_TOL).nonzero()[0]
-                        r, m = r[near], m[near]
-                    diff = table.take(m, 0)
-                    diff -= table.take(f.take(r), 0)
-                    np.abs(diff, out=diff)
-                    agree = np.maximum.reduce(diff, axis=1) <= ENV_TOL
-                    best = f.copy()
-                    np.minimum.at(best, r[agree], m[agree])
-                    first[f] = best
-        if first is not None:  # some atoms differ from their class's first
+    # (when every position is a class, each is a site of its own; without
+    # contacts there are no distances to differ)
+    if a.size and ngroup < npos:
+        # Distances in a padded table, each atom's sorted by partner type
+        # and distance (column: the contact's place among the atom's
+        # contacts): within a class the rows line up.
+        dd = np.concatenate([d, d])
+        order = _order(ak, d, dd, npos * (nt + 1))
+        a_s = a[order]
+        # (each atom's first place in a_s looked up once per atom, not
+        # once per contact)
+        col = np.arange(a.size) - a_s.searchsorted(np.arange(npos)).take(a_s)
+        width = int(np.maximum.reduce(col)) + 1
+        table = np.zeros((npos, width))
+        table[a_s, col] = dd[order]
+        # Each atom joins the first atom of its class whose distances agree: the
+        # class's first atom, or for the atoms whose distances differ from that
+        # atom's, the first of the earlier atoms of the class that agrees (or
+        # itself), found in blocks of up to 2e6 distance comparisons.
+        lead = np.array(leader, dtype=np.int64).take(cls)
+        dev = np.subtract(table, table.take(lead, 0))
+        np.abs(dev, out=dev)  # (how far each distance is from its class leader's)
+        # (ufunc reductions: the any() and max() methods' wrappers cost
+        # more than the work on these small tables)
+        if np.maximum.reduce(dev, axis=None) > ENV_TOL:  # some atoms differ from their class's first
+            first = lead
+            apart = (np.maximum.reduce(dev, axis=1) > ENV_TOL).nonzero()[0]
+            step = max(1, 2_000_000 // (npos * width))
+            for s in range(0, apart.size, step):
+                f = apart[s : s + step]
+                r, m = ((cls.take(f)[:, None] == cls) & (np.arange(npos) < f[:, None])).nonzero()
+                if r.size * width > 1024:
+                    # Rows agree only where their first distances do:
+                    # comparing those first leaves fewer whole rows.
+                    t0 = table[:, 0]
+                    near = (np.abs(t0[m] - t0[f[r]]) <= ENV_TOL).nonzero()[0]
+                    r, m = r[near], m[near]
+                diff = table.take(m, 0)
+                diff -= table.take(f.take(r), 0)
+                np.abs(diff, out=diff)
+                agree = np.maximum.reduce(diff, axis=1) <= ENV_TOL
+                best = f.copy()
+                np.minimum.at(best, r[agree], m[agree])
+                first[f] = best
             label_list, first_pos = first_seen_and_index(first.tolist())
             ngroup = len(first_pos)
             label = np.array(label_list, dtype=np.int64)
