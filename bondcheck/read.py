@@ -566,8 +566,10 @@ def _atom_column(block):
 
 
 def _atom_loop(block, column) -> tuple[tuple[str, ...], list[str]]:
-    """The atom-site tags as written and the flat list of values; ``column``
-    is the block's :func:`_atom_column`."""
+    """The atom-site tags and the flat list of values; ``column`` is the
+    block's :func:`_atom_column`.  A loop's tags come as written, those of
+    single key-value pairs (one atom) in lower case with underscores, the
+    form :func:`_site_columns` makes of both."""
     loop = column.get_loop()
     if loop is not None:
         return tuple(loop.tags), loop.values
@@ -1408,8 +1410,9 @@ def _crystal_from_block(block, column, source: str, max_atoms: int = limits.MAX_
 
 
 def _occupancies(occ_raw: list[str] | None, nrow: int, labels: list[str]) -> tuple[np.ndarray, bool]:
-    """The sites' occupancies, and whether they are known to be 1 each (one
-    value for all sites, or none given)."""
+    """The sites' occupancies, and whether they are known to be 1 each: the
+    same value written for every site, 1 (or within OCC_TOL above) or '?' /
+    '.', or no occupancies at all."""
     if occ_raw is None:
         return np.ones(nrow), True
     first = occ_raw[0]
