@@ -208,8 +208,8 @@ def specific(rows: list[dict], entry: str, digest: str, texts: list[str] | None 
         suffix = g.get("path") or ""
         path = entry + suffix
         r = Row(entry=entry, path=path)
-        r.update(g)  # the keys in g's order after entry and path; path as it was
-        r["path"] = path
+        r.update(g)  # g's keys in g's order after entry and path (path keeps its place:
+        r["path"] = path  # g's value, the suffix, replaced by the whole path again)
         r["hash"] = digest
         r.json = None
         if texts is not None:
