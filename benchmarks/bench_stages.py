@@ -43,9 +43,9 @@ def run(files, opts, spent) -> None:
     from bondcheck import api
 
     clk = time.process_time
-    for s in range(0, len(files), 32):
+    for start in range(0, len(files), 32):
         t = clk()
-        cs = read_chunk(files[s:s + 32])
+        cs = read_chunk(files[start:start + 32])
         spent["read"] += clk() - t
         t = clk()
         con = [api._bonds_stage(c, opts) for c in cs]
