@@ -479,16 +479,18 @@ class _Context:
         anions = list(start)
         an_z = {nums[a] for a in anions}
         present_z = [nums[sy] for sy in self.static.present]
+        can_grow = any(near(a, b) for a in present_z for b in present_z if a < b)
+        outside = [sy for sy in self.static.present if sy not in anions and nums[sy] in _CAPABLE_Z]
         # The element pairs of the bonds, each once, in order of first bond:
         # the growth below depends only on which pairs occur and on that order
         # (a later bond of the same pair can add nothing), and a structure has
         # far fewer pairs than bonds. Taken only when some pair of the
-        # elements present could grow the set, or an element could be left
-        # without an anion neighbour.
-        pairs = None
-        if any(near(a, b) for a in present_z for b in present_z if a < b):
+        # elements present could grow the set, or an anion-capable element
+        # outside it could be left without an anion neighbour.
+        if can_grow or outside:
             z = self.crystal.numbers
             pairs = list(dict.fromkeys(zip(z[self.bi].tolist(), z[self.bj].tolist())))
+        if can_grow:
             grow = [(a, b) for a, b in pairs if near(a, b)]  # met in bond order
             changed = True
             while changed:
@@ -506,11 +508,8 @@ class _Context:
                         changed = True
         # Anion-capable elements with no bond to any anion are isolated anions
         # (Cl- beside water molecules), not cations.
-        loose = [sy for sy in self.static.present if sy not in anions and nums[sy] in _CAPABLE_Z]
+        loose = [sy for sy in outside if sy not in anions]
         if loose:
-            if pairs is None:
-                z = self.crystal.numbers
-                pairs = list(dict.fromkeys(zip(z[self.bi].tolist(), z[self.bj].tolist())))
             bonded_to_anion = {b for a, b in pairs if a in an_z} | {a for a, b in pairs if b in an_z}
             anions += [sy for sy in loose if nums[sy] not in bonded_to_anion]
         if anions == list(start):
