@@ -73,8 +73,19 @@ class Contacts:
     ionic_pair: np.ndarray
     # (atomic numbers, usable, per-element reference, overall reference) of
     # the relative test, kept so that another criterion can judge the same
-    # contacts cheaply.
+    # contacts cheaply, then (element code per atom, number of elements) as
+    # element_codes gives them.
     references: tuple | None = None
+
+    def element_codes(self, numbers: np.ndarray) -> tuple | None:
+        """(element code per atom, an int64 array numbering the elements 0,
+        1, ... in order of first appearance; number of elements) as the bond
+        stage made them for the atomic numbers `numbers` (the very array), or
+        None when it made none for them (no contacts, another array)."""
+        refs = self.references
+        if refs is None or refs[0] is not numbers:
+            return None
+        return refs[4], refs[5]
 
     def vectors(self, crystal: Crystal, select=None) -> np.ndarray:
         """Cartesian vector from atom i to the image of atom j, for every
@@ -244,7 +255,9 @@ class _DirectSearch:
 def _references(ratio, i, j, numbers, usable):
     """Per contact, the criterion-independent references of the relative test:
     the shorter of the two atoms' shortest contacts to each other's element,
-    and the shorter of their shortest contacts altogether."""
+    and the shorter of their shortest contacts altogether; then the element
+    codes they were found with (per atom, 0, 1, ... in order of first
+    appearance) and the number of elements."""
     code = first_seen(numbers.tolist())  # element codes 0, 1, ... per atom
     ne = max(code) + 1
     code = np.array(code, dtype=np.int64)
@@ -268,7 +281,7 @@ def _references(ratio, i, j, numbers, usable):
     nearest = np.minimum.reduce(best.reshape(ne, n_atoms), axis=0)
     per_el = best[key]
     overall = nearest[atom]
-    return np.minimum(per_el[:m], per_el[m:]), np.minimum(overall[:m], overall[m:])
+    return np.minimum(per_el[:m], per_el[m:]), np.minimum(overall[:m], overall[m:]), code, ne
 
 
 def _extended(core):
@@ -367,7 +380,7 @@ def find_contacts(crystal: Crystal, criterion: Criterion | None = None) -> Conta
     if ratio.size:
         usable = ~ionic_pair
         refs = (z, usable) + _references(ratio, i, j, z, usable)
-        judged = _judge(ratio, *refs[1:], *_wobbled(criterion))
+        judged = _judge(ratio, *refs[1:4], *_wobbled(criterion))
         bonded = judged[0]
         fragile = judged[1] != judged[2]
     else:
@@ -383,7 +396,7 @@ def rescaled(crystal: Crystal, contacts: Contacts, criterion: Criterion) -> Cont
     if refs is None or not (refs[0] is crystal.numbers or np.array_equal(refs[0], crystal.numbers)):
         usable = ~c.ionic_pair
         refs = (crystal.numbers, usable) + _references(c.ratio, c.i, c.j, crystal.numbers, usable)
-    bonded = _judge(c.ratio, *refs[1:], criterion.core, criterion.maximum, criterion.relative,
+    bonded = _judge(c.ratio, *refs[1:4], criterion.core, criterion.maximum, criterion.relative,
                     _extended(criterion.core))
     return replace(c, bonded=bonded)
 

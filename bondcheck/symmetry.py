@@ -174,9 +174,15 @@ def group_sites(crystal: Crystal, contacts) -> Sites:
     # the counts below do not depend on it.
     a = np.concatenate([pi, pj])
     b = np.concatenate([pj, pi])
-    tcode = first_seen(types.tolist())
-    nt = max(tcode) + 1
-    tcode = np.array(tcode, dtype=np.int64)
+    # Type codes 0, 1, ... in order of first appearance: with a position per
+    # entry the types are the atomic numbers, which the bond stage has coded.
+    codes = contacts.element_codes(crystal.numbers) if pos_index is None else None
+    if codes is not None:
+        tcode, nt = codes
+    else:
+        tcode = first_seen(types.tolist())
+        nt = max(tcode) + 1
+        tcode = np.array(tcode, dtype=np.int64)
     ak = a * (nt + 1) + tcode.take(b)  # atom and partner type in one number
     # Classes: the number of contacts to each partner type and own type (in
     # a last column, which no contact counts into).
