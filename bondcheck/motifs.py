@@ -280,8 +280,9 @@ def triangle_edges(n_atoms: int, bi, bj, shift) -> np.ndarray:
 
 
 def find_clusters(crystal, contacts, count, valence_of) -> list[Cluster]:
-    """Deltahedral clusters of anion atoms with more than four homoatomic
-    neighbours or at least three triangle edges, counted by the Wade-Mingos
+    """Deltahedral clusters: finite components of at least five anion atoms
+    with at least three triangle edges each (anion-anion bonds in a
+    three-membered ring), joined by those edges; counted by the Wade-Mingos
     rules (K. Wade, J. Chem. Soc. D 1971, 792): a closo n-vertex deltahedron
     needs n + 1 skeletal electron pairs, nido n + 2, arachno n + 3.
 
