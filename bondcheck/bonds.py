@@ -60,6 +60,7 @@ class Contacts:
     weight:  occ_i * occ_j, the expected number of such contacts.
     bonded:  the criterion's decision.
     fragile: the decision flips when the criterion is scaled by 1 +/- WOBBLE.
+    ionic_pair: both atoms electropositive (never a bond, nor a reference).
     """
 
     i: np.ndarray
@@ -303,7 +304,8 @@ def _judge(ratio, usable, ref_el, ref_all, core, maximum, relative, extended) ->
     as the failed comparison it stands for, and np.minimum keeps it, failing
     the comparison; so nan numbers decide as the separate comparisons would."""
     eps = 1e-9
-    # (worked in place in one new array: the same operations, fewer allocations)
+    # (the same operations, worked in place: two new arrays for the limits,
+    # not one per operation)
     limit = ref_el * relative
     limit += eps
     np.minimum(limit, extended, out=limit)
