@@ -246,7 +246,7 @@ def same_count(crystal: Crystal, contacts: Contacts, bonded: np.ndarray, anions:
     sets = _fixed_cations(zs, tuple(anions) if anions else None)
     if sets is None:
         return not anions  # no candidate: nothing to count either way; a set count() refuses
-    fixed, first = sets
+    fixed, first, fixed_z, first_z = sets
     i, j, d = contacts.i, contacts.j, contacts.d
     ci, cj = i[changed], j[changed]
     # The changed contacts, a few: each looked at in turn.
@@ -273,7 +273,6 @@ def same_count(crystal: Crystal, contacts: Contacts, bonded: np.ndarray, anions:
     ui, uj = i[rows], j[rows]
     zi, zj = z[ui], z[uj]
     n = len(z)
-    fixed_z, first_z = _element_masks(fixed, first)
     if x_may:
         # Cations that may bond to each other in the first split (in any
         # other, a subset of them), and the candidates among them at x.
@@ -294,7 +293,8 @@ def same_count(crystal: Crystal, contacts: Contacts, bonded: np.ndarray, anions:
     other = np.concatenate((zj[sel], zi[sel]))
     rs = rows[sel]
     dd = np.concatenate((d[rs], d[rs]))
-    kept = np.concatenate((given[rs], given[rs])) & np.concatenate((bonded[rs], bonded[rs]))
+    kept = given[rs] & bonded[rs]
+    kept = np.concatenate((kept, kept))
     use = at[end] & ~fixed_z[other]
     end, other, dd, kept = end[use], other[use], dd[use], kept[use]
     longest = np.zeros(n)
@@ -307,23 +307,12 @@ def same_count(crystal: Crystal, contacts: Contacts, bonded: np.ndarray, anions:
 
 
 @lru_cache(maxsize=1024)
-def _element_masks(fixed: frozenset, first: frozenset) -> tuple[np.ndarray, np.ndarray]:
-    """The two sets of `_fixed_cations` as masks by atomic number."""
-    out = []
-    for members in (fixed, first):
-        m = np.zeros(_CAPABLE_BY_Z.size, dtype=bool)
-        m[list(members)] = True
-        m.setflags(write=False)
-        out.append(m)
-    return out[0], out[1]
-
-
-@lru_cache(maxsize=1024)
 def _fixed_cations(zs: tuple[int, ...], anions: tuple[str, ...] | None):
-    """(fixed cations, first anion set) as sets of atomic numbers, for
-    `same_count`: the elements present that cannot be anions and are in no
-    candidate set, or not in the user's set; None when there is no
-    candidate or the user's set names an element not present."""
+    """(fixed cations, first anion set) as sets of atomic numbers, then the
+    same two as read-only masks by atomic number, for `same_count`: the
+    elements present that cannot be anions and are in no candidate set, or
+    not in the user's set; None when there is no candidate or the user's set
+    names an element not present."""
     nums = elements.numbers()
     if anions:
         if not all(a in nums for a in anions):
@@ -337,7 +326,14 @@ def _fixed_cations(zs: tuple[int, ...], anions: tuple[str, ...] | None):
             return None
         first = frozenset(nums[a] for a in cands[0][0])
         every = frozenset(nums[a] for an, _why in cands for a in an)
-    return frozenset(k for k in zs if k not in _CAPABLE_Z and k not in every), first
+    fixed = frozenset(k for k in zs if k not in _CAPABLE_Z and k not in every)
+    masks = []
+    for members in (fixed, first):
+        m = np.zeros(_CAPABLE_BY_Z.size, dtype=bool)
+        m[list(members)] = True
+        m.setflags(write=False)
+        masks.append(m)
+    return fixed, first, masks[0], masks[1]
 
 
 # target() by atomic number: electrons that complete the shell.
