@@ -556,7 +556,7 @@ class _Context:
             cc_any = bool(np.count_nonzero(cc))
 
         # Per-atom homonuclear-role bonds: anion-anion for anions, cation-cation
-        # for cations (with no cation-cation bond, ic and jc are empty).
+        # for cations (the cation-cation ends only when some count).
         ia, ja = bi[aa], bj[aa]
         if cc_any:
             ic, jc = bi[cc], bj[cc]
@@ -571,7 +571,7 @@ class _Context:
             n_anion = float(sum([st.z_count[k] for k in anion_z]))
             shell = float(sum([st.z_count[k] * _TARGET[k] for k in anion_z]))
             per = np.bincount(ends, minlength=n)
-            if ends.size:  # bincount with weights gives floats, but whole numbers with nothing to add
+            if ends.size:  # floats, as bincount with weights gives them (integer zeros with nothing to add)
                 per = per.astype(np.float64)
             aa_ends = 2.0 * int(np.count_nonzero(aa))
             cc_e = 2.0 * int(np.count_nonzero(cc)) if cc_any else 0.0
@@ -676,8 +676,8 @@ class _Context:
                     d1[:, 0] * d2[:, 1] - d1[:, 1] * d2[:, 0],
                 ], axis=1)
                 for t, k in enumerate(atom[start].tolist()):
-                    # np.linalg.norm of a vector is the square root of its dot
-                    # product with itself; each dot product as before.
+                    # The length as np.linalg.norm gives it: the square root of
+                    # the vector's dot product with itself.
                     nn = math.sqrt(normal[t].dot(normal[t]))
                     if nn > 1e-9 and abs(np.dot(v0[t], normal[t] / nn)) < 0.15:
                         planar_atom[k] = True
@@ -866,12 +866,11 @@ def _search(options, lo: float = -math.inf, hi: float = math.inf):
     path) that `_match` unrolls; top is the largest reachable total. Only
     totals that can still end within [lo, hi] are followed: a state is
     dropped when even its smallest and largest completions miss the window.
-    Dropping never changes
-    which path wins a kept total (every path to a kept total runs through
-    kept states, met in the same order), so the result within the window is
-    that of the full enumeration. The enumeration stops after a group that
-    leaves more than MAX_STATES totals; the window is used only where that
-    cannot happen."""
+    Dropping never changes which path wins a kept total (every path to a
+    kept total runs through kept states, met in the same order), so the
+    result within the window is that of the full enumeration. The
+    enumeration stops after a group that leaves more than MAX_STATES
+    totals; the window is used only where that cannot happen."""
     locs = []
     for g, w, opts in options:
         if not opts:
