@@ -442,8 +442,10 @@ def check_all(sources, *, anions=None, valence=None, criterion=None, options=Non
                 where = getattr(cr, "source", "") or path
                 out.append(Result(path=where, status="error", error=str(cr), seconds=time.perf_counter() - t0))
                 continue
+            t1 = time.perf_counter()
             try:
                 out.append(check_crystal(cr, opts))
-            except Exception as exc:
-                out.append(Result(path=cr.source or path, status="error", error=f"unexpected {type(exc).__name__}: {exc}"))
+            except Exception as exc:  # a bug in one structure must not lose the rest
+                out.append(Result(path=cr.source or path, name=cr.name, status="error",
+                                  error=f"unexpected {type(exc).__name__}: {exc}", seconds=time.perf_counter() - t1))
     return out

@@ -169,3 +169,32 @@ def test_bad_block_does_not_cost_the_good_one(tmp_path, minerals):
     assert sorted(r["status"] for r in rows) == ["error", "ok"]
     ok = next(r for r in rows if r["status"] == "ok")
     assert ok["verdict"] == "consistent" and ok["vec_anion"] == 8.0
+
+
+def test_unexpected_exception_in_one_structure_keeps_the_rest(tmp_path, monkeypatch):
+    """A bug that raises in one structure (simulated: the count raises for the
+    block named 'sic_b') gives that structure an error result with its path,
+    name and time; the other structure is checked as usual, both by
+    check_all and by the stage-by-stage check_crystals a scan worker uses.
+    The structure is zinc-blende SiC (a = 4.3596 A, from memory): Si-C bonds
+    only, no anion-anion bonds (common practice, no source)."""
+    import bondcheck.api as api
+    from bondcheck.read import read
+
+    (tmp_path / "a.cif").write_text(GOOD)
+    (tmp_path / "b.cif").write_text(GOOD.replace("data_sic", "data_sic_b"))
+    real = api.count
+
+    def broken(crystal, *args, **kwargs):
+        if crystal.name == "sic_b":
+            raise TypeError("simulated bug")
+        return real(crystal, *args, **kwargs)
+
+    monkeypatch.setattr(api, "count", broken)
+    files = [str(tmp_path / "a.cif"), str(tmp_path / "b.cif")]
+    crystals = [c for f in files for c in read(f)]
+    for good, bad in (api.check_all(files), api.check_crystals(crystals)):
+        assert good.status == "ok" and good.name == "sic" and good.aa_observed == 0.0
+        assert good.formula == "SiC"
+        assert bad.status == "error" and bad.error == "unexpected TypeError: simulated bug"
+        assert bad.name == "sic_b" and bad.path.endswith("b.cif") and bad.seconds > 0
