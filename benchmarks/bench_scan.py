@@ -5,6 +5,7 @@ pymatgen script doing the naive version of the job on the same files.
     python benchmarks/bench_scan.py --limit 0          # every corpus file
     python benchmarks/bench_scan.py --flat 100000      # + memory on 100,000 entries
     python benchmarks/bench_scan.py --only-flat --machinery 60000   # the scan's own ceiling
+    python benchmarks/bench_scan.py --paired 5 --limit 600   # CPU per file against the script, interleaved
 
 Each measurement runs in a fresh process (so imports, caches and memory do not
 leak between them) and reports files/s and the peak resident memory of the
@@ -28,6 +29,15 @@ Measurements
   pymatgen  the naive script: CifParser, covalent-radius cutoff (sum of
             covalent radii + 15 %), the most electronegative element as the
             anion, count anion-anion bonds per anion
+
+--paired R   only `batched` and `pymatgen`, R rounds each in fresh processes,
+            alternating which goes first (A B, B A, ...), on the same files: the
+            ratio of CPU time per file in each round and its median.  On a
+            machine whose speed drifts during a run (seen: the same loop 15 %
+            apart in one process a minute later) this ratio is steadier than
+            files/s taken minutes apart.  It also reads the per-core target
+            against the script: 2000 files/s per core where the script does
+            about 150 files/s is 13.3 times the script's rate.
 
 Skips (exit status 0, with a message) when ../shared/corpus is absent.
 """
@@ -299,6 +309,34 @@ def run_one(name: str, workdir: str) -> dict:
     return json.loads(res.stdout.strip().splitlines()[-1])
 
 
+TARGET_PER_CORE, SCRIPT_REFERENCE = 2000.0, 150.0  # files/s: the target, and the script where it was set
+
+
+def paired(rounds: int, workdir: str) -> int:
+    import statistics
+
+    print("| round | order | bondcheck batched CPU ms/file | pymatgen script CPU ms/file | ratio |")
+    print("|---:|---|---:|---:|---:|")
+    ratios, ours, theirs = [], [], []
+    for r in range(rounds):
+        order = ("batched", "pymatgen") if r % 2 == 0 else ("pymatgen", "batched")
+        got = {name: run_one(name, workdir)["main_cpu_ms_per_file"] for name in order}
+        ours.append(got["batched"])
+        theirs.append(got["pymatgen"])
+        ratios.append(got["pymatgen"] / got["batched"])
+        print(f"| {r + 1} | {' then '.join(order)} | {got['batched']:.3f} | {got['pymatgen']:.3f} | {ratios[-1]:.2f}x |",
+              flush=True)
+    need = TARGET_PER_CORE / SCRIPT_REFERENCE
+    med = statistics.median(ratios)
+    print()
+    print(f"median ratio of CPU per file (script / bondcheck): {med:.2f}x (range {min(ratios):.2f}-{max(ratios):.2f}x)")
+    print(f"per core on this machine: bondcheck {1000 / statistics.median(ours):.0f} files/s, "
+          f"script {1000 / statistics.median(theirs):.0f} files/s")
+    print(f"the per-core target read against the script: {TARGET_PER_CORE:.0f} / {SCRIPT_REFERENCE:.0f} = {need:.1f}x "
+          f"its rate; measured {med:.2f}x ({med / need:.0%} of it)")
+    return 0
+
+
 def main() -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     ap.add_argument("--limit", type=int, default=1000, help="corpus files to use, spread evenly (0: all)")
@@ -307,6 +345,8 @@ def main() -> int:
     ap.add_argument("--only-flat", action="store_true", help="only the --flat and --machinery measurements")
     ap.add_argument("--machinery", type=int, default=0, metavar="N",
                     help="also scan N entries that cost the check nothing: the scan's own ceiling")
+    ap.add_argument("--paired", type=int, default=0, metavar="R",
+                    help="only batched against pymatgen, R interleaved rounds (CPU per file)")
     ap.add_argument("--one", help=argparse.SUPPRESS)
     ap.add_argument("--workdir", help=argparse.SUPPRESS)
     args = ap.parse_args()
@@ -334,6 +374,8 @@ def main() -> int:
           f"Python {platform.python_version()}")
     with tempfile.TemporaryDirectory(prefix="bench-scan-") as wd:
         Path(wd, "files.txt").write_text("\n".join(files) + "\n")
+        if args.paired:
+            return paired(args.paired, wd)
         names = ["loop", "loop+symmetry", "batched", "inline", "jobs=1", "jobs=2", "jobs=1 warm", "jobs=2 warm",
                  "store", "rerun"]
         if not args.skip_pymatgen:
