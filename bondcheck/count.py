@@ -375,6 +375,10 @@ class _Static:
     # whole numbers, exact in any order, and are taken as counts of atoms.
     full: bool
     z_count: list[int]  # atoms per atomic number
+    # Electrons beyond `electrons` that Ce, Pr and Tb may give as 4+ cations
+    # where every anion is O or F (one per atom, by occupancy; not for an
+    # element whose valence the user set): see _group_options.
+    fourth: float = 0.0
 
 
 def _static(crystal: Crystal, sites: Sites, valence: dict[str, int]) -> _Static:
@@ -424,10 +428,14 @@ def _static(crystal: Crystal, sites: Sites, valence: dict[str, int]) -> _Static:
     # Every Count of the structure hands out group_of: read-only, so that no
     # caller can change the remembered one.
     group_of.setflags(write=False)
+    fourth = 0.0
+    if _TETRAVALENT_Z & zset:
+        tz = [k for k in _TETRAVALENT_Z & zset if _SYMBOLS[k] not in valence]
+        fourth = float(sum(z_count[k] for k in tz)) if full else float(occ[np.isin(z, tz)].sum())
     out = _Static(
         present, electrons, capable_atom, capable_z, not_ep_atom, not_ep_z,
         group_of, groups, group_elements, group_weight, group_size, occ_target,
-        _candidates(tuple(sorted(zset))), full, z_count,
+        _candidates(tuple(sorted(zset))), full, z_count, fourth,
     )
     _LOCAL.static = (key, out)
     return out
@@ -581,7 +589,10 @@ class _Context:
             per = np.bincount(ends, weights=occ[np.concatenate(partner)], minlength=n)
             aa_ends = 2.0 * float(bw[aa].sum())
             cc_e = 2.0 * float(bw[cc].sum()) if cc_any else 0.0
-        vec = self.static.electrons / n_anion
+        electrons = st.electrons
+        if st.fourth and anion_z <= _HARD_ANION_Z:
+            electrons += st.fourth  # Ce, Pr, Tb with four (see _group_options)
+        vec = electrons / n_anion
         mean_target = shell / n_anion
         aa_obs = aa_ends / n_anion
         cc_obs = cc_e / n_anion
@@ -620,7 +631,7 @@ class _Context:
             cations=cations,
             reason=why,
             n_anion=n_anion,
-            electrons=self.static.electrons,
+            electrons=electrons,
             vec_anion=vec,
             aa_predicted=mean_target - vec,
             aa_observed=aa_obs,
@@ -736,6 +747,13 @@ class _Context:
             return Closure(False)
         cost, choice, mixed = best
         keep = {g: v for g, v in choice.items()}
+        if self.static.fourth and split.anion_z <= _HARD_ANION_Z:
+            # Ce, Pr, Tb counted with four electrons: kept electrons against
+            # their valence of three (-1 for 4+).
+            override = self.valence_override
+            for g, (zz, sym, _block) in enumerate(self.static.group_elements):
+                if g in keep and zz in _TETRAVALENT_Z and sym not in override:
+                    keep[g] -= 1.0
         from_planar = min(pi, pi_planar)
         return Closure(True, keep, pi, pi - from_planar, from_planar, mixed, cost)
 
@@ -753,6 +771,12 @@ class _Context:
             ccb_all = group_mean(per, go, size, crowded).tolist()
         all_saturated = None
         anion_z, weight, override = split.anion_z, self.static.group_weight, self.valence_override
+        # Ce, Pr, Tb reach 4+ beside the hardest anions only (oxides,
+        # fluorides: CeO2, Na2PrO3, TbF4). Where every anion is O or F,
+        # evaluate counts four electrons for them and they may keep one (3+)
+        # or none (4+), both common; _close reports the kept electrons against
+        # their usual three (-1 for 4+). Elsewhere they count three, as 3+.
+        four = self.static.fourth and anion_z <= _HARD_ANION_Z
         for g, (zz, sym, block) in enumerate(self.static.group_elements):
             if zz in anion_z:
                 continue
@@ -764,8 +788,16 @@ class _Context:
                 if all_saturated is None:
                     all_saturated = (np.bincount(go[~self._saturated(split)], minlength=ng) == 0).tolist()
                 saturated = all_saturated[g]
-            out.append((g, weight[g], _kept_options(zz, ccb, overridden, saturated)))
+            if four and zz in _TETRAVALENT_Z and not overridden:
+                out.append((g, weight[g], _THREE_OR_FOUR))
+            else:
+                out.append((g, weight[g], _kept_options(zz, ccb, overridden, saturated)))
         return tuple(out)
+
+
+_HARD_ANION_Z = frozenset({8, 9})  # O, F
+_TETRAVALENT_Z = frozenset(elements.numbers()[s] for s in elements.TETRAVALENT_LANTHANIDES)
+_THREE_OR_FOUR = ((0.0, 0), (1.0, 0))  # electrons kept of four, cost
 
 
 @lru_cache(maxsize=4096)

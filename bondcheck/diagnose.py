@@ -196,7 +196,7 @@ def _explanations(case: Case) -> list[F.Finding]:
     syms = elements.symbols()
     cl = c.closure
     first = None  # _first_atoms(c), when a finding names a group
-    lone, dstates, lanth = [], [], []
+    lone, dstates, lanth, tetra = [], [], [], []
     groups, valence = c.groups, case.valence
     for g, k in cl.keep.items():
         z = groups[g][1]
@@ -219,6 +219,10 @@ def _explanations(case: Case) -> list[F.Finding]:
                 if first is None:
                     first = _first_atoms(c)
                 lanth.append(crystal.label(first[g]))
+        elif k < -1e-6 and sym in elements.TETRAVALENT_LANTHANIDES:  # kept -1 of three: 4+
+            if first is None:
+                first = _first_atoms(c)
+            tetra.append(crystal.label(first[g]))
     if lone:
         n = sum(x[2] for x in lone)
         who = ", ".join(f"{lab} ({s})" for lab, s, _, _ in lone)
@@ -243,6 +247,8 @@ def _explanations(case: Case) -> list[F.Finding]:
         )
     if lanth:
         out.append(F.DivalentLanthanide(sites=lanth, who=", ".join(lanth)))
+    if tetra:
+        out.append(F.TetravalentLanthanide(sites=tetra, who=", ".join(tetra)))
     if np.count_nonzero(c.cc_bond):
         pairs, w = _pairs(case, c.cc_bond)
         out.append(

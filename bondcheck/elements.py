@@ -16,6 +16,13 @@ import numpy as np
 # Lanthanides that commonly stay divalent, keeping one electron (4f7 Eu2+,
 # 4f14 Yb2+, Sm2+): common practice, no source.
 DIVALENT_LANTHANIDES = frozenset({"Sm", "Eu", "Yb"})
+# Lanthanides that also reach 4+ (CeO2, PrO2, TbO2, Na2CeO3, BaCeO3), beside
+# oxide and fluoride anions only: common practice, no source.  They count 3
+# valence electrons like the other lanthanides; the count lets them give a
+# fourth where every anion is O or F (count._group_options).  They are the
+# lanthanides whose ICSD oxidation states in elements.json include 4; a test
+# keeps the two in step.
+TETRAVALENT_LANTHANIDES = frozenset({"Ce", "Pr", "Tb"})
 # Early actinides behave like d-block metals for counting (Th4+, Pa5+, U6+
 # maximum states): common practice, no source.
 DLIKE_ACTINIDES = {"Th": 4, "Pa": 5, "U": 6}
@@ -73,7 +80,8 @@ def valence(sym: str) -> int:
     """Valence electrons given up or shared in the count.
 
     Main group: s + p electrons; d block: group number (Zn, Cd, Hg: 2);
-    lanthanides and late actinides: 3; Th, Pa, U: 4, 5, 6.
+    lanthanides and late actinides: 3 (Ce, Pr, Tb: see
+    TETRAVALENT_LANTHANIDES); Th, Pa, U: 4, 5, 6.
     """
     row = table()[sym]
     g, block = row["group"], row["block"]

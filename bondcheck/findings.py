@@ -153,6 +153,17 @@ class DivalentLanthanide(Finding):
 
 
 @register
+class TetravalentLanthanide(Finding):
+    slug = "tetravalent-lanthanide"
+    explains = True
+    template = "{who} at +4: a fourth electron given"
+    title = "Tetravalent Ce, Pr or Tb"
+    meaning = "Ce, Pr and Tb reach +4 beside oxide and fluoride anions (CeO2, Na2PrO3, TbO2): they give four electrons, not three."
+    fires_when = "Every anion is O or F and the count closes only with the lanthanide at +4."
+    next_steps = "Bond lengths (bond valence sums), magnetic data or XANES tell +4 from +3."
+
+
+@register
 class MixedValence(Finding):
     slug = "mixed-valence"
     explains = True

@@ -266,6 +266,8 @@ def _kept(crystal, c, det: Detail) -> list[Kept]:
         parts = []
         if blk == "d":
             parts.append(f"d{_num(per_atom)}")
+        elif blk == "f" and per_atom < -1e-6:
+            parts.append(f"gives {_num(-per_atom)} more (4+)")
         elif blk == "f":
             parts.append(f"{_num(per_atom)} f electrons")
         elif own > 1e-6:
