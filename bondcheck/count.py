@@ -110,6 +110,7 @@ class _Split:
     ca: np.ndarray  # per bond: cation-anion
     per: np.ndarray  # per atom: homonuclear-role bonds (as Count.aa_bonds)
     cc_any: bool  # some cation-cation bond counts
+    four: bool = False  # the groups of _Static.four_z count four electrons (see _group_options)
 
 
 @lru_cache(maxsize=4096)
@@ -375,9 +376,10 @@ class _Static:
     # whole numbers, exact in any order, and are taken as counts of atoms.
     full: bool
     z_count: list[int]  # atoms per atomic number
-    # Electrons beyond `electrons` that Ce, Pr and Tb may give as 4+ cations
-    # where every anion is O or F (one per atom, by occupancy; not for an
-    # element whose valence the user set): see _group_options.
+    # Ce, Pr, Tb present whose valence the user did not set (atomic numbers),
+    # and the electrons beyond `electrons` they give as 4+ cations (one per
+    # atom, by occupancy): see _group_options.
+    four_z: frozenset = frozenset()
     fourth: float = 0.0
 
 
@@ -428,14 +430,14 @@ def _static(crystal: Crystal, sites: Sites, valence: dict[str, int]) -> _Static:
     # Every Count of the structure hands out group_of: read-only, so that no
     # caller can change the remembered one.
     group_of.setflags(write=False)
+    four_z = frozenset(k for k in _TETRAVALENT_Z & zset if _SYMBOLS[k] not in valence)
     fourth = 0.0
-    if _TETRAVALENT_Z & zset:
-        tz = [k for k in _TETRAVALENT_Z & zset if _SYMBOLS[k] not in valence]
-        fourth = float(sum(z_count[k] for k in tz)) if full else float(occ[np.isin(z, tz)].sum())
+    if four_z:
+        fourth = float(sum(z_count[k] for k in four_z)) if full else float(occ[np.isin(z, list(four_z))].sum())
     out = _Static(
         present, electrons, capable_atom, capable_z, not_ep_atom, not_ep_z,
         group_of, groups, group_elements, group_weight, group_size, occ_target,
-        _candidates(tuple(sorted(zset))), full, z_count, fourth,
+        _candidates(tuple(sorted(zset))), full, z_count, four_z, fourth,
     )
     _LOCAL.static = (key, out)
     return out
@@ -590,7 +592,8 @@ class _Context:
             aa_ends = 2.0 * float(bw[aa].sum())
             cc_e = 2.0 * float(bw[cc].sum()) if cc_any else 0.0
         electrons = st.electrons
-        if st.fourth and anion_z <= _HARD_ANION_Z:
+        four = bool(st.four_z) and anion_z <= _FOUR_PLUS_ANION_Z
+        if four:
             electrons += st.fourth  # Ce, Pr, Tb with four (see _group_options)
         vec = electrons / n_anion
         mean_target = shell / n_anion
@@ -622,7 +625,7 @@ class _Context:
                 note = f"{sym} would be a cation without anion neighbours"
 
         if valid or close_invalid:
-            closure = self._close(_Split(anion_z, role, aa, ca, per, cc_any), residual * n_anion + cc_e, n_anion)
+            closure = self._close(_Split(anion_z, role, aa, ca, per, cc_any, four), residual * n_anion + cc_e, n_anion)
         else:
             closure = Closure(False)
         cations = [s for s in self.static.present if s not in anions]
@@ -747,12 +750,12 @@ class _Context:
             return Closure(False)
         cost, choice, mixed = best
         keep = {g: v for g, v in choice.items()}
-        if self.static.fourth and split.anion_z <= _HARD_ANION_Z:
+        if split.four:
             # Ce, Pr, Tb counted with four electrons: kept electrons against
             # their valence of three (-1 for 4+).
-            override = self.valence_override
-            for g, (zz, sym, _block) in enumerate(self.static.group_elements):
-                if g in keep and zz in _TETRAVALENT_Z and sym not in override:
+            four_z = self.static.four_z
+            for g, (zz, _sym, _block) in enumerate(self.static.group_elements):
+                if zz in four_z and g in keep:
                     keep[g] -= 1.0
         from_planar = min(pi, pi_planar)
         return Closure(True, keep, pi, pi - from_planar, from_planar, mixed, cost)
@@ -772,11 +775,12 @@ class _Context:
         all_saturated = None
         anion_z, weight, override = split.anion_z, self.static.group_weight, self.valence_override
         # Ce, Pr, Tb reach 4+ beside the hardest anions only (oxides,
-        # fluorides: CeO2, Na2PrO3, TbF4). Where every anion is O or F,
-        # evaluate counts four electrons for them and they may keep one (3+)
-        # or none (4+), both common; _close reports the kept electrons against
-        # their usual three (-1 for 4+). Elsewhere they count three, as 3+.
-        four = self.static.fourth and anion_z <= _HARD_ANION_Z
+        # fluorides: CeO2, Na2PrO3, TbF4). Where every anion is O or F
+        # (split.four), evaluate counts four electrons for them and they may
+        # keep one (3+) or none (4+), both common; _close reports the kept
+        # electrons against their usual three (-1 for 4+). Elsewhere they
+        # count three, as 3+.
+        four_z = self.static.four_z if split.four else ()
         for g, (zz, sym, block) in enumerate(self.static.group_elements):
             if zz in anion_z:
                 continue
@@ -788,14 +792,14 @@ class _Context:
                 if all_saturated is None:
                     all_saturated = (np.bincount(go[~self._saturated(split)], minlength=ng) == 0).tolist()
                 saturated = all_saturated[g]
-            if four and zz in _TETRAVALENT_Z and not overridden:
+            if zz in four_z:
                 out.append((g, weight[g], _THREE_OR_FOUR))
             else:
                 out.append((g, weight[g], _kept_options(zz, ccb, overridden, saturated)))
         return tuple(out)
 
 
-_HARD_ANION_Z = frozenset({8, 9})  # O, F
+_FOUR_PLUS_ANION_Z = frozenset(elements.numbers()[s] for s in elements.FOUR_PLUS_ANIONS)
 _TETRAVALENT_Z = frozenset(elements.numbers()[s] for s in elements.TETRAVALENT_LANTHANIDES)
 _THREE_OR_FOUR = ((0.0, 0), (1.0, 0))  # electrons kept of four, cost
 

@@ -23,6 +23,7 @@ DIVALENT_LANTHANIDES = frozenset({"Sm", "Eu", "Yb"})
 # lanthanides whose ICSD oxidation states in elements.json include 4; a test
 # keeps the two in step.
 TETRAVALENT_LANTHANIDES = frozenset({"Ce", "Pr", "Tb"})
+FOUR_PLUS_ANIONS = frozenset({"O", "F"})  # the anions beside which they may be 4+
 # Early actinides behave like d-block metals for counting (Th4+, Pa5+, U6+
 # maximum states): common practice, no source.
 DLIKE_ACTINIDES = {"Th": 4, "Pa": 5, "U": 6}
